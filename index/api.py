@@ -1,0 +1,395 @@
+"""Archive: the one facade that the CLI, the web app and scripts call."""
+from __future__ import annotations
+
+import fcntl
+import os
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Iterable
+
+import numpy as np
+from PIL import Image
+
+from . import manifest as mf
+from .backbones import DEFAULT_BACKBONE, NAMES, Backbone, BackboneError, get_backbone
+from .catalog import Catalog
+from .decode import DecodeError, open_image
+from .layers import PRESET_HINTS, listing, resolve_layers
+from .pipeline import Job, run
+from .pooling import PCAWhitening
+from .scan import diff, normalize_roots, walk
+from .search import nearest
+from .store import VectorStore
+
+DEFAULT_GEM_P = 3.0
+DEFAULT_WHITEN_MIN_IMAGES = 1000
+
+
+class ArchiveError(Exception):
+    """Anything the user must fix: a plain sentence, never a stack trace."""
+
+
+def _threads() -> None:
+    # One process, two cores: torch's intra-op pool gets them; FAISS the same. Readers are I/O-bound threads.
+    import faiss
+    import torch
+
+    n = max(1, os.cpu_count() or 1)
+    torch.set_num_threads(n)
+    faiss.omp_set_num_threads(n)
+
+
+class Archive:
+    """One database folder: catalog.sqlite, one FAISS index per layer, manifest.json."""
+
+    def __init__(self, db: Path, manifest: dict):
+        self.db = Path(db)
+        self.manifest = manifest
+        self.catalog = Catalog(self.db / "catalog.sqlite")
+        self._backbone: Backbone | None = None
+        self._embedder = None
+        self._stores: dict[str, VectorStore] = {}
+        self._whitening: dict[str, PCAWhitening] = {}
+
+    # --- opening ----------------------------------------------------------------------------
+    @classmethod
+    def open(
+        cls,
+        db: str | os.PathLike,
+        *,
+        create: bool = False,
+        backbone: str | None = None,
+        layers: list[str] | None = None,
+        gem_p: float | None = None,
+        whiten: bool | None = None,
+        weights: str | os.PathLike | None = None,
+    ) -> "Archive":
+        """Open the archive in folder `db`; with create=True, make it if absent.
+
+        Settings given for an existing archive must match what it was built with.
+        """
+        db = Path(db)
+        try:
+            manifest = mf.read(db)
+        except ValueError as exc:
+            raise ArchiveError(str(exc)) from None
+        if manifest is None:
+            if not create:
+                raise ArchiveError(f"{db} is not a kinscope database (no {mf.FILE}); index a folder into it first")
+            if db.exists() and any(db.iterdir()):
+                raise ArchiveError(f"{db} is not empty and holds no {mf.FILE}; choose a new or empty folder for --db")
+            manifest = cls._new_manifest(db, backbone or DEFAULT_BACKBONE, layers, gem_p, whiten, weights)
+            archive = cls(db, manifest)
+            archive.catalog.set_layers([{k: l[k] for k in ("name", "node", "channels", "stride", "dim")} for l in manifest["layers"]])
+            mf.write(db, manifest)
+            return archive
+        asked = {"backbone": backbone, "layers": layers, "gem_p": gem_p, "whiten": whiten}
+        if weights is not None:
+            try:
+                asked["weights_sha256"] = get_backbone(backbone or manifest["backbone"]["name"], weights).weights.sha256()
+            except BackboneError as exc:
+                raise ArchiveError(str(exc)) from None
+        problems = mf.differences(manifest, asked)
+        if problems:
+            raise ArchiveError(
+                f"{db} was built with other settings:\n  " + "\n  ".join(problems)
+                + "\nUse a new --db folder for these settings, or leave them out to use the archive's own."
+            )
+        return cls(db, manifest)
+
+    @staticmethod
+    def _new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
+        try:
+            backbone = get_backbone(backbone_name, weights)
+            model = backbone.load()
+            layers = resolve_layers(backbone, model, list(layer_names or backbone.default_layers))
+        except BackboneError as exc:
+            raise ArchiveError(str(exc)) from None
+        p = DEFAULT_GEM_P if gem_p is None else float(gem_p)
+        if p <= 0:
+            raise ArchiveError(f"the GeM exponent must be positive, got {p}")
+        db.mkdir(parents=True, exist_ok=True)
+        names = [l.name for l in layers]
+        default = backbone.default_search_layer if backbone.default_search_layer in names else names[0]
+        return {
+            "format": mf.FORMAT,
+            "created_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            "backbone": backbone.manifest(),
+            "layers": [{**l.manifest(), "dim": l.channels, "file": mf.store_file(l.name)} for l in layers],
+            "default_layer": default,
+            "pooling": {"method": "GeM", "p": p, "normalisation": "L2"},
+            "whitening": {"enabled": bool(whiten), "min_images": DEFAULT_WHITEN_MIN_IMAGES, "learned": {}},
+            "generation": 0,
+            "versions": mf.versions(),
+        }
+
+    # --- lazily built parts -----------------------------------------------------------------
+    @property
+    def layer_names(self) -> list[str]:
+        return [l["name"] for l in self.manifest["layers"]]
+
+    def _layer(self, name: str | None) -> dict:
+        name = name or self.manifest["default_layer"]
+        for layer in self.manifest["layers"]:
+            if name in (layer["name"], layer["node"]):
+                return layer
+        raise ArchiveError(f"this archive has no layer {name!r}; it has: {', '.join(self.layer_names)}")
+
+    @property
+    def backbone(self) -> Backbone:
+        if self._backbone is None:
+            b = self.manifest["backbone"]
+            packaged = b["weights_source"] != "file named by the user"
+            try:
+                backbone = get_backbone(b["name"], None if packaged else b["weights_file"])
+            except BackboneError as exc:
+                raise ArchiveError(str(exc)) from None
+            if backbone.weights.sha256() != b["weights_sha256"]:
+                raise ArchiveError(
+                    f"the weights of {b['name']} at {backbone.weights.path} differ from the ones this archive "
+                    "was built with (sha256 mismatch); its descriptors would not be comparable"
+                )
+            self._backbone = backbone
+        return self._backbone
+
+    @property
+    def embedder(self):
+        if self._embedder is None:
+            from .embed import Embedder
+            from .layers import Layer
+
+            _threads()
+            model = self.backbone.load()
+            layers = [Layer(l["name"], l["node"], l["channels"], l["stride"]) for l in self.manifest["layers"]]
+            self._embedder = Embedder(self.backbone, model, layers, self.manifest["pooling"]["p"])
+        return self._embedder
+
+    def store(self, layer: str) -> VectorStore:
+        if layer not in self._stores:
+            entry = self._layer(layer)
+            path = self.db / entry["file"]
+            self._stores[layer] = VectorStore.load(path) if path.exists() else VectorStore(entry["dim"])
+        return self._stores[layer]
+
+    def whitening(self, layer: str) -> PCAWhitening | None:
+        learned = self.manifest["whitening"]["learned"].get(layer)
+        if learned and layer not in self._whitening:
+            self._whitening[layer] = PCAWhitening.load(self.db / learned["file"])
+        return self._whitening.get(layer)
+
+    # --- indexing ---------------------------------------------------------------------------
+    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 16) -> dict:
+        """Index every image below these paths, incrementally; returns the run's counts."""
+        try:
+            roots = normalize_roots(paths)
+        except FileNotFoundError as exc:
+            raise ArchiveError(str(exc)) from None
+        if not roots:
+            raise ArchiveError("give at least one file or folder to index")
+        with self._writer_lock():
+            return self._add(roots, progress, batch_size)
+
+    def _add(self, roots: list[str], progress: bool, batch_size: int) -> dict:
+        self.reconcile()
+        run_id = self.catalog.start_run(roots)
+        errors: list[dict] = []
+        cs = diff(walk(roots, errors), self.catalog.rows_under(roots), self.catalog.failures_under(roots))
+        for layer in self.layer_names:
+            self.store(layer).remove(np.array(cs.removed + [i for i, _ in cs.changed], np.int64))
+        self.catalog.delete_images(cs.removed)
+        self.catalog.update_files(
+            [(i, {"size": f["size"], "mtime": f["mtime"]}) for i, f in cs.touched]
+            + [(i, {"path": f["path"], "size": f["size"], "mtime": f["mtime"]}) for i, f in cs.moved]
+            + [(i, {"size": f["size"], "mtime": f["mtime"], "status": "pending"}) for i, f in cs.changed]
+        )
+        self.catalog.clear_failures(cs.gone_failures + [f["path"] for f in cs.new])
+        self.catalog.record_failures([{**e, "size": None, "mtime": None} for e in errors], run_id)
+        self.catalog.insert_pending(cs.new, run_id)
+        self._save_stores()  # removals are durable before any new work starts
+        jobs = [Job(i, p) for i, p in self.catalog.pending(roots)]
+
+        done_rows: list[dict] = []
+
+        def on_batch(ids, descriptors, rows):
+            for layer, vectors in descriptors.items():
+                w = self.whitening(layer)
+                self.store(layer).add(ids, w.transform(vectors) if w else vectors)
+            done_rows.extend(rows)
+
+        def on_failures(failures):
+            if not failures:
+                return
+            ids = [f["job"].id for f in failures]
+            for layer in self.layer_names:
+                self.store(layer).remove(np.array(ids, np.int64))
+            self.catalog.delete_images(ids)
+            self.catalog.record_failures(
+                [{"path": f["job"].path, "size": f.get("size"), "mtime": f.get("mtime"), "reason": f["error"]}
+                 for f in failures], run_id)
+
+        def checkpoint():
+            self._save_stores()
+            self.catalog.mark_embedded(done_rows, run_id)
+            done_rows.clear()
+
+        counts = run(jobs, self.embedder if jobs else None, on_batch, on_failures, checkpoint,
+                     batch_size=batch_size, progress=progress) if jobs else None
+        embedded = counts.embedded if counts else 0
+        failed = (counts.failed if counts else 0) + len(errors)
+        interrupted = bool(counts and counts.interrupted)
+        if not interrupted:
+            self._maybe_learn_whitening()
+        report = {**cs.counts(), "embedded": embedded, "failed": failed}
+        self.catalog.finish_run(run_id, "interrupted" if interrupted else "done", report)
+        return {**report, "run_id": run_id, "interrupted": interrupted, "known_failures": cs.known_failures}
+
+    def _save_stores(self) -> None:
+        for layer in self.layer_names:
+            entry = self._layer(layer)
+            self.store(layer).save(self.db / entry["file"])
+        self.manifest["generation"] += 1
+        self.manifest["counts"] = {layer: len(self.store(layer)) for layer in self.layer_names}
+        mf.write(self.db, self.manifest)
+
+    def _writer_lock(self):
+        archive = self
+
+        class _Lock:
+            def __enter__(self):
+                self.fh = open(archive.db / "indexer.lock", "a+")
+                try:
+                    fcntl.flock(self.fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                except BlockingIOError:
+                    self.fh.close()
+                    raise ArchiveError(
+                        f"another kinscope indexer is working on {archive.db}; wait for it to finish"
+                    ) from None
+                return self
+
+            def __exit__(self, *exc):
+                fcntl.flock(self.fh, fcntl.LOCK_UN)
+                self.fh.close()
+
+        return _Lock()
+
+    def reconcile(self) -> dict:
+        """Make every store agree with the catalog after an interrupted run (no re-embedding here)."""
+        ok = np.array(self.catalog.ids_with_status("ok"), np.int64)
+        dropped, missing = 0, set()
+        for layer in self.layer_names:
+            stored = self.store(layer).ids()
+            extra = np.setdiff1d(stored, ok)
+            dropped += self.store(layer).remove(extra)
+            missing.update(np.setdiff1d(ok, stored).tolist())
+        if missing:
+            self.catalog.set_status(sorted(missing), "pending")  # they are embedded again by the next add
+        if dropped:
+            self._save_stores()
+        return {"dropped": dropped, "requeued": len(missing)}
+
+    def _maybe_learn_whitening(self) -> None:
+        w = self.manifest["whitening"]
+        if not w["enabled"] or w["learned"]:
+            return
+        ids = np.array(self.catalog.ids_with_status("ok"), np.int64)
+        if len(ids) < w["min_images"]:
+            return
+        for layer in self.layer_names:
+            store = self.store(layer)
+            raw = store.reconstruct(ids)
+            pca = PCAWhitening().fit(raw)
+            file = f"whitening-{self._layer(layer)['file'].removesuffix('.faiss')}.npz"
+            pca.save(self.db / file)
+            fresh = VectorStore(pca.out_dim)
+            fresh.add(ids, pca.transform(raw))
+            self._stores[layer] = fresh
+            self._whitening[layer] = pca
+            w["learned"][layer] = {"file": file, "dim": pca.out_dim, "n": len(ids)}
+            self._layer(layer)["dim"] = pca.out_dim
+        self._save_stores()
+
+    # --- searching --------------------------------------------------------------------------
+    def describe(self, query, layer: str | None = None) -> np.ndarray:
+        """The descriptor of a query: a catalog id, a file path, image bytes or a PIL image."""
+        name = self._layer(layer)["name"]
+        if isinstance(query, (int, np.integer)):
+            if int(query) not in self.catalog.get([int(query)]):
+                raise ArchiveError(f"no indexed item with id {int(query)}")
+            try:
+                return self.store(name).reconstruct(np.array([int(query)]))[0]
+            except RuntimeError:  # committed in the catalog but not in this store: `kinscope index` again
+                raise ArchiveError(f"item {int(query)} has no {name} descriptor yet; run kinscope index again") from None
+        image = self._query_image(query)
+        vector = self.embedder.embed_images([image])[name]
+        w = self.whitening(name)
+        return (w.transform(vector) if w else vector)[0]
+
+    def _query_image(self, query) -> Image.Image:
+        if isinstance(query, Image.Image):
+            return query.convert("RGB")
+        if isinstance(query, (str, os.PathLike)) and not os.path.isfile(query):
+            raise ArchiveError(f"query image not found: {query}")
+        try:
+            return open_image(query, min_side=self.backbone.input_size).image
+        except DecodeError as exc:
+            raise ArchiveError(f"cannot use {query if not isinstance(query, bytes) else 'the uploaded file'} as a query: {exc.reason}") from None
+
+    def search(self, query, *, layer: str | None = None, k: int = 10) -> dict:
+        """Items most similar to the query, best first; score = cosine similarity of descriptors."""
+        if not isinstance(k, (int, np.integer)) or k < 1:
+            raise ArchiveError(f"k must be a positive whole number, got {k!r}")
+        name = self._layer(layer)["name"]
+        vector = self.describe(query, name)
+        exclude = int(query) if isinstance(query, (int, np.integer)) else None
+        results = nearest(self.store(name), self.catalog, vector, int(k), exclude=exclude)
+        if exclude is not None:
+            q = {"id": exclude, "path": self.catalog.get([exclude])[exclude]["path"]}
+        elif isinstance(query, (str, os.PathLike)):
+            q = {"id": None, "path": os.path.abspath(os.fspath(query))}
+        else:
+            q = {"id": None, "path": None}
+        return {"query": q, "layer": name, "results": results}
+
+    # --- reporting --------------------------------------------------------------------------
+    def info(self) -> dict:
+        summary = self.catalog.summary()
+        m = self.manifest
+        layers = [
+            {**{k: l[k] for k in ("name", "node", "channels", "stride", "dim")}, "vectors": len(self.store(l["name"])),
+             "hint": PRESET_HINTS.get(l["name"], "")}
+            for l in m["layers"]
+        ]
+        return {
+            "db": str(self.db),
+            "backbone": {k: m["backbone"][k] for k in ("name", "family", "weights_source", "weights_sha256")},
+            "pooling": m["pooling"],
+            "whitening": {"enabled": m["whitening"]["enabled"], "learned": sorted(m["whitening"]["learned"])},
+            "default_layer": m["default_layer"],
+            "layers": layers,
+            **summary,
+        }
+
+    @staticmethod
+    def available_layers(backbone: str = DEFAULT_BACKBONE, weights: str | None = None) -> dict:
+        """The layers one can index for a backbone, with channels, stride and presets."""
+        try:
+            b = get_backbone(backbone, weights)
+            rows = listing(b, b.build().eval())
+        except BackboneError as exc:
+            raise ArchiveError(str(exc)) from None
+        return {"backbone": b.name, "input_size": b.input_size, "default_layers": list(b.default_layers),
+                "default_search_layer": b.default_search_layer, "layers": rows,
+                "presets": {name: {"node": node, "hint": PRESET_HINTS[name]} for name, node in b.presets.items()}}
+
+    @staticmethod
+    def backbones() -> tuple[str, ...]:
+        return NAMES
+
+    def close(self) -> None:
+        self.catalog.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

@@ -1,0 +1,208 @@
+"""The SQLite catalog (through sqlite-utils): images, layers, runs, failures."""
+from __future__ import annotations
+
+import json
+import os
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Iterable
+
+import sqlite_utils
+
+# status of an image row: 'pending' (waiting for descriptors) or 'ok' (in every layer's store)
+IMAGE_COLUMNS = {
+    "id": int,
+    "path": str,
+    "folder": str,
+    "name": str,
+    "size": int,
+    "mtime": float,
+    "sha256": str,
+    "status": str,
+    "width": int,
+    "height": int,
+    "format": str,
+    "captured_at": str,
+    "camera": str,
+    "title": str,
+    "keywords": str,  # JSON list
+    "run_id": int,
+    "indexed_at": str,
+}
+
+
+def now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+class Catalog:
+    def __init__(self, path: Path):
+        self.db = sqlite_utils.Database(str(path))
+        self.db.execute("PRAGMA journal_mode=WAL")  # readers see the last commit while indexing runs
+        self.db.execute("PRAGMA busy_timeout=10000")
+        self._create()
+
+    def _create(self) -> None:
+        db = self.db
+        if "images" not in db.table_names():
+            db["images"].create(IMAGE_COLUMNS, pk="id", not_null={"path", "status"})
+            db["images"].create_index(["path"], unique=True)
+            db["images"].create_index(["sha256"])
+            db["images"].create_index(["status"])
+            db["images"].create_index(["folder"])
+        if "failures" not in db.table_names():
+            db["failures"].create(
+                {"path": str, "size": int, "mtime": float, "reason": str, "run_id": int, "at": str}, pk="path"
+            )
+        if "layers" not in db.table_names():
+            db["layers"].create({"name": str, "node": str, "channels": int, "stride": int, "dim": int}, pk="name")
+        if "runs" not in db.table_names():
+            db["runs"].create(
+                {
+                    "id": int, "started_at": str, "finished_at": str, "roots": str, "status": str,
+                    "new": int, "changed": int, "moved": int, "removed": int, "unchanged": int,
+                    "embedded": int, "failed": int,
+                },
+                pk="id",
+            )
+
+    # --- runs -------------------------------------------------------------------------------
+    def start_run(self, roots: list[str]) -> int:
+        table = self.db["runs"]
+        table.insert({"started_at": now(), "roots": json.dumps(roots), "status": "running"})
+        return int(table.last_pk)
+
+    def finish_run(self, run_id: int, status: str, counts: dict) -> None:
+        self.db["runs"].update(run_id, {"finished_at": now(), "status": status, **counts})
+
+    # --- images -----------------------------------------------------------------------------
+    def rows_under(self, roots: Iterable[str]) -> dict[str, dict]:
+        """path -> row for every image row below any of these folders (or equal to a root file)."""
+        rows = {}
+        for root in roots:
+            prefix = root.rstrip(os.sep) + os.sep
+            query = "select id, path, size, mtime, sha256, status from images where path = ? or substr(path, 1, ?) = ?"
+            for row in self.db.query(query, [root, len(prefix), prefix]):
+                rows[row["path"]] = row
+        return rows
+
+    def insert_pending(self, files: list[dict], run_id: int) -> list[int]:
+        """New files -> pending rows; returns their ids (the FAISS ids in every layer)."""
+        ids = []
+        with self.db.conn:
+            for f in files:
+                cur = self.db.execute(
+                    "insert into images (path, folder, name, size, mtime, sha256, status, run_id) "
+                    "values (?, ?, ?, ?, ?, ?, 'pending', ?)",
+                    [f["path"], os.path.dirname(f["path"]), os.path.basename(f["path"]), f["size"], f["mtime"],
+                     f.get("sha256"), run_id],
+                )
+                ids.append(int(cur.lastrowid))
+        return ids
+
+    def update_files(self, updates: list[tuple[int, dict]]) -> None:
+        """Apply stat/path/status changes to existing rows in one transaction."""
+        with self.db.conn:
+            for image_id, values in updates:
+                if "path" in values:
+                    values = {**values, "folder": os.path.dirname(values["path"]), "name": os.path.basename(values["path"])}
+                sets = ", ".join(f"{k} = ?" for k in values)
+                self.db.execute(f"update images set {sets} where id = ?", [*values.values(), image_id])
+
+    def delete_images(self, ids: list[int]) -> None:
+        with self.db.conn:
+            for chunk in _chunks(ids, 500):
+                self.db.execute(f"delete from images where id in ({','.join('?' * len(chunk))})", chunk)
+
+    def pending(self, roots: Iterable[str] | None = None) -> list[tuple[int, str]]:
+        """(id, path) of rows still waiting for descriptors, optionally only below these roots."""
+        rows = self.db.execute("select id, path from images where status = 'pending' order by id").fetchall()
+        if roots is None:
+            return rows
+        prefixes = tuple(r.rstrip(os.sep) + os.sep for r in roots)
+        return [(i, p) for i, p in rows if p.startswith(prefixes) or p in roots]
+
+    def mark_embedded(self, rows: list[dict], run_id: int) -> None:
+        stamp = now()
+        with self.db.conn:
+            for r in rows:
+                self.db.execute(
+                    "update images set status = 'ok', sha256 = ?, width = ?, height = ?, format = ?, captured_at = ?, "
+                    "camera = ?, title = ?, keywords = ?, run_id = ?, indexed_at = ? where id = ?",
+                    [r["sha256"], r["width"], r["height"], r["format"], r["captured_at"], r["camera"], r["title"],
+                     json.dumps(r["keywords"]), run_id, stamp, r["id"]],
+                )
+
+    def ids_with_status(self, status: str) -> list[int]:
+        return [r[0] for r in self.db.execute("select id from images where status = ?", [status]).fetchall()]
+
+    def set_status(self, ids: list[int], status: str) -> None:
+        with self.db.conn:
+            for chunk in _chunks(ids, 500):
+                self.db.execute(
+                    f"update images set status = ? where id in ({','.join('?' * len(chunk))})", [status, *chunk]
+                )
+
+    def get(self, ids: list[int]) -> dict[int, dict]:
+        """id -> row for these ids (one query per 500 ids; rows of images not yet embedded are left out)."""
+        out = {}
+        for chunk in _chunks(list(ids), 500):
+            q = f"select * from images where status = 'ok' and id in ({','.join('?' * len(chunk))})"
+            for row in self.db.query(q, chunk):
+                row["keywords"] = json.loads(row["keywords"]) if row["keywords"] else []
+                out[row["id"]] = row
+        return out
+
+    def by_path(self, path: str) -> dict | None:
+        rows = list(self.db.query("select * from images where path = ?", [path]))
+        return rows[0] if rows else None
+
+    # --- failures ---------------------------------------------------------------------------
+    def failures_under(self, roots: Iterable[str]) -> dict[str, dict]:
+        out = {}
+        for root in roots:
+            prefix = root.rstrip(os.sep) + os.sep
+            q = "select * from failures where path = ? or substr(path, 1, ?) = ?"
+            for row in self.db.query(q, [root, len(prefix), prefix]):
+                out[row["path"]] = row
+        return out
+
+    def record_failures(self, failures: list[dict], run_id: int) -> None:
+        stamp = now()
+        self.db["failures"].upsert_all(
+            [{**f, "run_id": run_id, "at": stamp} for f in failures], pk="path"
+        )
+
+    def clear_failures(self, paths: list[str]) -> None:
+        with self.db.conn:
+            for chunk in _chunks(paths, 500):
+                self.db.execute(f"delete from failures where path in ({','.join('?' * len(chunk))})", chunk)
+
+    # --- layers and summary -----------------------------------------------------------------
+    def set_layers(self, layers: list[dict]) -> None:
+        self.db["layers"].upsert_all(layers, pk="name")
+
+    def summary(self) -> dict:
+        counts = dict(self.db.execute("select status, count(*) from images group by status").fetchall())
+        failures = [
+            {"path": r["path"], "reason": r["reason"], "at": r["at"]}
+            for r in self.db.query("select path, reason, at from failures order by path")
+        ]
+        last = list(self.db.query("select * from runs order by id desc limit 1"))
+        return {
+            "images": counts.get("ok", 0),
+            "pending": counts.get("pending", 0),
+            "failed": len(failures),
+            "failures": failures,
+            "bytes": self.db.execute("select coalesce(sum(size), 0) from images where status = 'ok'").fetchone()[0],
+            "last_run": last[0] if last else None,
+        }
+
+    def close(self) -> None:
+        self.db.close()
+
+
+def _chunks(items: list, n: int):
+    for i in range(0, len(items), n):
+        yield items[i : i + n]

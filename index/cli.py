@@ -1,0 +1,153 @@
+"""The `kinscope` command: thin wrappers over index.api.Archive (parse, call, print)."""
+from __future__ import annotations
+
+import json
+import sys
+
+import click
+
+from .api import Archive, ArchiveError
+from .backbones import DEFAULT_BACKBONE, NAMES
+
+DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
+
+
+def _fail(exc: Exception) -> None:
+    click.echo(f"kinscope: {exc}", err=True)
+    sys.exit(2)
+
+
+def _layers(value: str | None) -> list[str] | None:
+    return [v.strip() for v in value.split(",") if v.strip()] if value else None
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(package_name="kinscope")
+def main() -> None:
+    """Index image archives by the layers of a pretrained network, and search them by example.
+
+    Everything stays on this machine: nothing is uploaded, and kinscope never changes, moves or
+    deletes files in the archive. A similarity score is evidence for a person to review, not a verdict.
+    """
+
+
+@main.command("index")
+@click.argument("paths", nargs=-1, required=True, type=click.Path(exists=True))
+@click.option("--db", required=True, type=click.Path(file_okay=False), help=DB_HELP)
+@click.option("--layers", help="Comma-separated layers to keep: presets (colour, texture, parts, objects) or node names. "
+              "Default: all four presets. Fixed when the archive is created.")
+@click.option("--backbone", type=click.Choice(NAMES), help=f"Network to use (default {DEFAULT_BACKBONE}).")
+@click.option("--weights", type=click.Path(exists=True, dir_okay=False), help="Weights file (state dict) for the backbone.")
+@click.option("--gem-p", type=float, help="GeM pooling exponent (default 3; 1 = average pooling).")
+@click.option("--whiten/--no-whiten", default=None, help="Learn PCA whitening once the archive holds 1000 images.")
+@click.option("--batch-size", default=16, show_default=True, type=click.IntRange(1, 256))
+@click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
+@click.option("--json", "as_json", is_flag=True, help="Print the run's counts as JSON.")
+def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, quiet, as_json):
+    """Index every image below PATHS into --db; re-running only does what changed."""
+    try:
+        with Archive.open(db, create=True, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
+                          whiten=whiten, weights=weights) as archive:
+            report = archive.add(paths, progress=not quiet, batch_size=batch_size)
+    except ArchiveError as exc:
+        _fail(exc)
+    if as_json:
+        click.echo(json.dumps(report, indent=2))
+        return
+    click.echo(
+        f"{report['new']} new, {report['changed']} changed, {report['moved']} moved, {report['removed']} removed, "
+        f"{report['unchanged']} unchanged; {report['embedded']} embedded, {report['failed']} could not be read"
+        + (f" ({report['known_failures']} known failures not retried)" if report["known_failures"] else "")
+    )
+    if report["failed"] or report["known_failures"]:
+        click.echo(f"See the reasons with: kinscope info --db {db}")
+    if report["interrupted"]:
+        click.echo("Interrupted: the finished batches are saved. Run the same command again to resume.", err=True)
+        sys.exit(130)
+
+
+@main.command()
+@click.argument("image", required=False, type=click.Path(dir_okay=False))
+@click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
+@click.option("--id", "item_id", type=int, help="Search by an indexed item instead of a file.")
+@click.option("--layer", help="Layer to compare on (default: the archive's default layer).")
+@click.option("-k", default=10, show_default=True, type=click.IntRange(1, 10000), help="How many results.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
+def search(image, db, item_id, layer, k, as_json):
+    """Find the items most like IMAGE (any file) or like indexed item --id N."""
+    if (image is None) == (item_id is None):
+        _fail(click.UsageError("give either IMAGE or --id N"))
+    try:
+        with Archive.open(db) as archive:
+            result = archive.search(item_id if item_id is not None else image, layer=layer, k=k)
+    except ArchiveError as exc:
+        _fail(exc)
+    if as_json:
+        keys = ("id", "path", "score", "width", "height")
+        result = {**result, "results": [{key: r[key] for key in keys} for r in result["results"]]}
+        click.echo(json.dumps(result, indent=2))
+        return
+    click.echo(f"layer {result['layer']}; score = cosine similarity (1.0 = identical descriptor)")
+    for rank, r in enumerate(result["results"], 1):
+        click.echo(f"{rank:3d}  {r['score']:.4f}  {r['width']}x{r['height']}  id {r['id']:<6d} {r['path']}")
+
+
+@main.command()
+@click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
+@click.option("--json", "as_json", is_flag=True, help="Print JSON.")
+def info(db, as_json):
+    """Counts, layers, backbone and the files that could not be read."""
+    try:
+        with Archive.open(db) as archive:
+            data = archive.info()
+    except ArchiveError as exc:
+        _fail(exc)
+    if as_json:
+        click.echo(json.dumps(data, indent=2, default=str))
+        return
+    b = data["backbone"]
+    click.echo(f"archive   {data['db']}")
+    click.echo(f"backbone  {b['name']} (weights: {b['weights_source']}, sha256 {b['weights_sha256'][:12]})")
+    click.echo(f"pooling   GeM p={data['pooling']['p']}, L2-normalised"
+               + (f"; PCA whitening learned for {', '.join(data['whitening']['learned'])}" if data["whitening"]["learned"]
+                  else "; PCA whitening on (learned at 1000 images)" if data["whitening"]["enabled"] else ""))
+    click.echo(f"images    {data['images']} indexed ({data['bytes'] / 1e6:.1f} MB), {data['pending']} pending, "
+               f"{data['failed']} could not be read")
+    click.echo("layers")
+    for l in data["layers"]:
+        mark = "*" if l["name"] == data["default_layer"] else " "
+        click.echo(f"  {mark} {l['name']:<10} {l['node']:<22} {l['channels']:>5} ch  stride {l['stride']:>2}  "
+                   f"{l['vectors']} vectors  {l['hint']}")
+    click.echo("  (* = default layer for search)")
+    if data["last_run"]:
+        r = data["last_run"]
+        click.echo(f"last run  {r['started_at']} -> {r['finished_at'] or '(running)'}: {r['status']}")
+    if data["failures"]:
+        click.echo("could not be read")
+        for f in data["failures"]:
+            click.echo(f"  {f['path']}: {f['reason']}")
+
+
+@main.command()
+@click.option("--backbone", default=DEFAULT_BACKBONE, show_default=True, type=click.Choice(NAMES))
+@click.option("--json", "as_json", is_flag=True, help="Print JSON.")
+def layers(backbone, as_json):
+    """The layers one can index for a backbone, with channels, spatial stride and presets."""
+    try:
+        data = Archive.available_layers(backbone)
+    except ArchiveError as exc:
+        _fail(exc)
+    if as_json:
+        click.echo(json.dumps(data, indent=2))
+        return
+    click.echo(f"{data['backbone']} at {data['input_size']}x{data['input_size']} input")
+    click.echo(f"  {'node':<22} {'channels':>8} {'stride':>6}  preset")
+    for row in data["layers"]:
+        preset = f"{row['preset']}: {row['hint']}" if row["preset"] else ""
+        click.echo(f"  {row['node']:<22} {row['channels']:>8} {row['stride']:>6}  {preset}")
+    click.echo(f"Default layers: {', '.join(data['default_layers'])}; search defaults to {data['default_search_layer']}. "
+               "Any other node name of the network's graph is accepted too.")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,494 @@
+"""Safe image loading and metadata reading for the indexer.
+
+open_image() turns a path, bytes or binary file object into an 8-bit RGB
+Pillow image with EXIF orientation applied, or raises DecodeError with a
+short reason fit for the failure table.  read_metadata() pulls capture date,
+camera, title and keywords out of EXIF, XMP and IPTC, ignoring broken parts.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import functools
+import io
+import os
+import struct
+import xml.etree.ElementTree as ET
+from dataclasses import dataclass
+from datetime import datetime
+from typing import IO, Iterator
+
+import numpy as np
+from PIL import Image, UnidentifiedImageError
+
+SUPPORTED_EXTENSIONS: frozenset[str] = frozenset(
+    {".jpg", ".jpeg", ".jpe", ".png", ".webp", ".tif", ".tiff",
+     ".bmp", ".gif", ".heic", ".heif"}
+)
+DEFAULT_MAX_PIXELS = 100_000_000
+
+HEIF_EXTRA_HINT = "pip install 'kinscope[heif]'"
+
+# Only these Pillow plugins may identify a file.  Letting Pillow try all of
+# its plugins would accept formats we do not list (and EPS would start
+# Ghostscript).  The JPEG plugin also returns "MPO" for JPEGs that carry a
+# multi-picture index (many phone photos); MPO has no opener of its own.
+_PILLOW_FORMATS = ("JPEG", "PNG", "WEBP", "TIFF", "BMP", "GIF")
+_JPEG_FORMATS = frozenset({"JPEG", "MPO"})
+
+# ISOBMFF 'ftyp' major brands used by HEIF still images (ISO/IEC 23008-12).
+_HEIF_BRANDS = frozenset(
+    {b"heic", b"heix", b"heim", b"heis", b"hevc", b"hevx", b"hevm", b"hevs",
+     b"mif1", b"msf1"}
+)
+
+_ALPHA_MODES = frozenset({"RGBA", "LA", "PA", "RGBa"})
+_DEEP_MODES = frozenset({"I;16", "I;16B", "I;16L", "I;16N", "I", "F"})
+
+# Exif Orientation value -> the Pillow transpose that displays it upright.
+_TRANSPOSE = {
+    2: Image.Transpose.FLIP_LEFT_RIGHT,
+    3: Image.Transpose.ROTATE_180,
+    4: Image.Transpose.FLIP_TOP_BOTTOM,
+    5: Image.Transpose.TRANSPOSE,
+    6: Image.Transpose.ROTATE_270,
+    7: Image.Transpose.TRANSVERSE,
+    8: Image.Transpose.ROTATE_90,
+}
+
+
+class DecodeError(Exception):
+    """An image that cannot be used; .reason is a short plain-language sentence."""
+
+    def __init__(self, reason: str) -> None:
+        super().__init__(reason)
+        self.reason = reason
+
+
+@dataclass(frozen=True)
+class Decoded:
+    """RGB image (oriented, alpha on white, maybe reduced) plus facts about the file.
+
+    width/height are the full-resolution size after orientation, even when
+    `image` was decoded smaller for min_side.
+    """
+
+    image: Image.Image
+    width: int
+    height: int
+    format: str
+    metadata: dict
+
+
+# --------------------------------------------------------------------------
+# open_image
+
+
+def open_image(source, *, max_pixels: int = DEFAULT_MAX_PIXELS,
+               min_side: int | None = None) -> Decoded:
+    """Decode `source` (path, bytes or binary file object) into a Decoded."""
+    if min_side is not None and (not isinstance(min_side, int) or min_side < 1):
+        raise ValueError("min_side must be a positive integer or None")
+    with _binary_stream(source) as fp:
+        _check_head(fp)
+        return _decode_stream(fp, max_pixels, min_side)
+
+
+@contextlib.contextmanager
+def _binary_stream(source) -> Iterator[IO[bytes]]:
+    """Yield a seekable binary stream; files we open are closed on exit."""
+    if isinstance(source, (bytes, bytearray, memoryview)):
+        yield io.BytesIO(bytes(source))
+    elif isinstance(source, (str, os.PathLike)):
+        try:
+            fp = open(source, "rb")
+        except OSError as exc:
+            raise DecodeError(_os_error_reason(exc)) from exc
+        with fp:
+            yield fp
+    elif hasattr(source, "read"):
+        yield _seekable(source)
+    else:
+        raise TypeError(f"cannot read an image from {type(source).__name__}")
+
+
+def _seekable(fp) -> IO[bytes]:
+    # Pillow seeks while identifying; buffer streams that cannot (sockets, pipes).
+    try:
+        seekable = getattr(fp, "seekable", None)
+        return fp if seekable and seekable() else io.BytesIO(fp.read())
+    except Exception as exc:
+        raise DecodeError("the uploaded data could not be read") from exc
+
+
+def _os_error_reason(exc: OSError) -> str:
+    if isinstance(exc, FileNotFoundError):
+        return "the file does not exist"
+    if isinstance(exc, PermissionError):
+        return "the file cannot be read (permission denied)"
+    if isinstance(exc, IsADirectoryError):
+        return "the path is a folder, not a file"
+    return f"the file could not be read ({exc.strerror or exc})"
+
+
+def _check_head(fp: IO[bytes]) -> None:
+    """Refuse empty input and HEIF when its plugin is missing, before Pillow."""
+    try:
+        fp.seek(0)
+        head = fp.read(32)
+        fp.seek(0)
+    except Exception as exc:
+        raise DecodeError("the file could not be read") from exc
+    if not head:
+        raise DecodeError("the file is empty")
+    if _looks_like_heif(head) and not _heif_ready():
+        raise DecodeError(
+            "HEIC/HEIF images need the optional extra: " + HEIF_EXTRA_HINT)
+
+
+def _looks_like_heif(head: bytes) -> bool:
+    # ISOBMFF: the first box is 'ftyp', its payload starts with the major brand.
+    return head[4:8] == b"ftyp" and head[8:12] in _HEIF_BRANDS
+
+
+@functools.cache
+def _heif_ready() -> bool:
+    """Register pillow-heif's opener once; False when the extra is absent."""
+    try:
+        import pillow_heif
+        pillow_heif.register_heif_opener()
+    except Exception:  # ImportError, or a broken/incompatible build
+        return False
+    return True
+
+
+def _open_formats() -> tuple[str, ...]:
+    return _PILLOW_FORMATS + (("HEIF",) if _heif_ready() else ())
+
+
+def _decode_stream(fp: IO[bytes], max_pixels: int, min_side: int | None) -> Decoded:
+    # No warnings.catch_warnings() here: it is not thread-safe and decoding
+    # runs in a thread pool.  Pillow's bomb warning/error, when raised as an
+    # exception, becomes a DecodeError below like any other failure.
+    try:
+        with Image.open(fp, formats=_open_formats()) as im:
+            return _decode_opened(im, max_pixels, min_side)
+    except DecodeError:
+        raise
+    except Exception as exc:  # bad input must never escape raw
+        raise DecodeError(_failure_reason(exc)) from exc
+
+
+def _failure_reason(exc: Exception) -> str:
+    if isinstance(exc, UnidentifiedImageError):
+        return "the file is not an image in a supported format, or its header is damaged"
+    if isinstance(exc, (Image.DecompressionBombError, Image.DecompressionBombWarning)):
+        return "the image declares too many pixels to decode safely"
+    if isinstance(exc, MemoryError):
+        return "the image is too large to decode in the available memory"
+    if isinstance(exc, OSError) and exc.errno is not None:
+        return _os_error_reason(exc)
+    if isinstance(exc, OSError) and "truncated" in str(exc):
+        return "the image file is truncated"
+    return "the image data is corrupt or uses an unsupported feature"
+
+
+def _decode_opened(im: Image.Image, max_pixels: int, min_side: int | None) -> Decoded:
+    full_w, full_h = _checked_size(im, max_pixels)
+    _request_draft(im, min_side)
+    im.load()  # full decode now, so truncation surfaces here and not later
+    metadata = read_metadata(im)
+    orientation = _orientation(im)
+    image = _apply_orientation(_reduce(_to_rgb(im), min_side), orientation)
+    if orientation >= 5:  # values 5-8 swap the axes
+        full_w, full_h = full_h, full_w
+    return Decoded(image, full_w, full_h, im.format or "", metadata)
+
+
+def _checked_size(im: Image.Image, max_pixels: int) -> tuple[int, int]:
+    """Validate the header's declared size before any pixel is decoded."""
+    width, height = im.size
+    if width <= 0 or height <= 0:
+        raise DecodeError("the image has zero width or height")
+    if width * height > max_pixels:
+        raise DecodeError(
+            f"the image is too large to decode safely ({width}x{height} pixels, "
+            f"limit {max_pixels:,})")
+    return width, height
+
+
+def _request_draft(im: Image.Image, min_side: int | None) -> None:
+    """Let libjpeg decode at 1/2, 1/4 or 1/8 scale when that is enough."""
+    if not min_side or im.format not in _JPEG_FORMATS:
+        return
+    width, height = im.size
+    short = min(width, height)
+    if short // min_side < 2:
+        return
+    # Ask for the size whose shorter side is min_side; draft() never goes below it.
+    im.draft(None, (-(-width * min_side // short), -(-height * min_side // short)))
+
+
+def _reduce(image: Image.Image, min_side: int | None) -> Image.Image:
+    # Box-average by the largest integer factor that keeps min_side.
+    factor = min(image.size) // min_side if min_side else 1
+    return image.reduce(factor) if factor >= 2 else image
+
+
+def _to_rgb(im: Image.Image) -> Image.Image:
+    """Return a new 8-bit RGB image (never the file-backed `im` itself)."""
+    if im.mode in _DEEP_MODES:
+        return _deep_to_8bit(im).convert("RGB")
+    if im.mode in _ALPHA_MODES or "transparency" in im.info:
+        return _composite_on_white(im)
+    return im.convert("RGB")
+
+
+def _composite_on_white(im: Image.Image) -> Image.Image:
+    rgba = im.convert("RGBA")  # also turns P/L/RGB 'transparency' into alpha
+    white = Image.new("RGBA", rgba.size, (255, 255, 255, 255))
+    return Image.alpha_composite(white, rgba).convert("RGB")
+
+
+def _deep_to_8bit(im: Image.Image) -> Image.Image:
+    """Scale 16-bit, 32-bit int and float grey images to 8 bits ("L")."""
+    values = np.asarray(im)
+    if im.mode.startswith("I;16"):
+        # round(v / 257) in integers: maps 0..65535 onto 0..255 exactly.
+        out = (values.astype(np.uint32) + 128) // 257
+    else:
+        out = np.rint(_scale_unknown_range(values.astype(np.float32), im.mode == "F"))
+    return Image.fromarray(np.clip(out, 0, 255).astype(np.uint8))
+
+
+def _scale_unknown_range(values: np.ndarray, is_float: bool) -> np.ndarray:
+    # Pillow does not say what range "I"/"F" pixels use.  Assume the usual
+    # ones: float 0..1, else 16-bit 0..65535; anything else is stretched.
+    values = np.nan_to_num(values, nan=0.0, posinf=0.0, neginf=0.0)
+    low, high = float(values.min()), float(values.max())
+    if is_float and low >= 0 and high <= 1:
+        return values * 255
+    if low >= 0 and high <= 65535:
+        return values / 257
+    return (values - low) * (255 / (high - low)) if high > low else values * 0
+
+
+def _orientation(im: Image.Image) -> int:
+    """The Exif Orientation value, or 1 when missing, broken or out of range."""
+    try:
+        value = im.getexif().get(0x0112, 1)
+    except Exception:
+        return 1
+    return value if type(value) is int and 1 <= value <= 8 else 1
+
+
+def _apply_orientation(image: Image.Image, orientation: int) -> Image.Image:
+    method = _TRANSPOSE.get(orientation)
+    return image.transpose(method) if method is not None else image
+
+
+# --------------------------------------------------------------------------
+# read_metadata
+
+_EXIF_IFD = 0x8769
+_DATETIME_ORIGINAL = 0x9003
+_DATETIME = 0x0132
+_MAKE, _MODEL, _IMAGE_DESCRIPTION = 0x010F, 0x0110, 0x010E
+_TIFF_XMP, _TIFF_IPTC = 700, 33723
+_PHOTOSHOP_IPTC = 0x0404
+_IPTC_OBJECT_NAME, _IPTC_KEYWORDS = (2, 5), (2, 25)
+
+_DC = "{http://purl.org/dc/elements/1.1/}"
+_RDF = "{http://www.w3.org/1999/02/22-rdf-syntax-ns#}"
+_XML_LANG = "{http://www.w3.org/XML/1998/namespace}lang"
+_XMP_MAX_BYTES = 4 * 1024 * 1024
+_DATE_FORMATS = ("%Y:%m:%d %H:%M:%S", "%Y-%m-%d %H:%M:%S",
+                 "%Y:%m:%dT%H:%M:%S", "%Y-%m-%dT%H:%M:%S")
+
+
+def read_metadata(img: Image.Image) -> dict:
+    """captured_at, camera, title, keywords; broken sources give None / []."""
+    exif = _safe(img.getexif)
+    xmp = _safe(lambda: _parse_xmp(_xmp_bytes(img)))
+    iptc = _safe(lambda: _iim_records(_iptc_bytes(img))) or {}
+    return {
+        "captured_at": _safe(lambda: _captured_at(exif)),
+        "camera": _safe(lambda: _camera(exif)),
+        "title": (_safe(lambda: _xmp_title(xmp))
+                  or _first(_iptc_texts(iptc, _IPTC_OBJECT_NAME))
+                  or _safe(lambda: _clean(exif.get(_IMAGE_DESCRIPTION)))),
+        "keywords": _dedupe(_safe(lambda: _xmp_subjects(xmp))
+                            or _iptc_texts(iptc, _IPTC_KEYWORDS)),
+    }
+
+
+def _safe(fn):
+    """Run one metadata step; any failure means 'not available'."""
+    try:
+        return fn()
+    except Exception:
+        return None
+
+
+def _clean(value) -> str | None:
+    """A tag value as a stripped, whitespace-collapsed string, or None."""
+    if isinstance(value, bytes):
+        value = _decode_text(value)
+    if not isinstance(value, str):
+        return None
+    value = " ".join(value.replace("\x00", " ").split())
+    return value or None
+
+
+def _decode_text(raw: bytes) -> str:
+    # Writers rarely declare a charset; UTF-8 first, Latin-1 never fails.
+    try:
+        return raw.decode("utf-8")
+    except UnicodeDecodeError:
+        return raw.decode("latin-1")
+
+
+def _first(items: list[str]) -> str | None:
+    return items[0] if items else None
+
+
+def _dedupe(items) -> list[str]:
+    return list(dict.fromkeys(i for i in (items or []) if i))
+
+
+def _captured_at(exif) -> str | None:
+    if exif is None:
+        return None
+    sub = _safe(lambda: exif.get_ifd(_EXIF_IFD)) or {}
+    # Some writers put DateTimeOriginal in IFD0; accept it there too.
+    for value in (sub.get(_DATETIME_ORIGINAL), exif.get(_DATETIME_ORIGINAL),
+                  exif.get(_DATETIME)):
+        parsed = _parse_exif_date(value)
+        if parsed:
+            return parsed
+    return None
+
+
+def _parse_exif_date(value) -> str | None:
+    text = _clean(value)
+    for fmt in _DATE_FORMATS if text else ():
+        try:
+            return datetime.strptime(text[:19], fmt).strftime("%Y-%m-%dT%H:%M:%S")
+        except ValueError:
+            continue
+    return None
+
+
+def _camera(exif) -> str | None:
+    if exif is None:
+        return None
+    make, model = _clean(exif.get(_MAKE)), _clean(exif.get(_MODEL))
+    if not make or not model:
+        return make or model
+    # Many cameras repeat the maker in the model string.
+    if model.lower().startswith(make.lower()):
+        return model
+    return f"{make} {model}"
+
+
+def _tiff_tag(img: Image.Image, tag: int):
+    tags = getattr(img, "tag_v2", None)
+    return tags.get(tag) if tags is not None else None
+
+
+def _xmp_bytes(img: Image.Image) -> bytes | None:
+    for value in (img.info.get("xmp"), img.info.get("XML:com.adobe.xmp"),
+                  _tiff_tag(img, _TIFF_XMP)):
+        if isinstance(value, str):
+            return value.encode("utf-8")
+        if isinstance(value, (bytes, bytearray)) and value:
+            return bytes(value)
+    return None
+
+
+def _parse_xmp(data: bytes | None):
+    """Parse an XMP packet into an Element, or None when absent or unsafe."""
+    if not data or len(data) > _XMP_MAX_BYTES:
+        return None
+    encoding = "utf-16" if data[:2] in (b"\xff\xfe", b"\xfe\xff") else "utf-8"
+    text = data.decode(encoding, "replace").strip("\x00 \t\r\n\ufeff")
+    # XMP never needs a DTD; refusing one rules out entity expansion attacks.
+    if "<!DOCTYPE" in text.upper() or "<!ENTITY" in text.upper():
+        return None
+    try:
+        return ET.fromstring(text)
+    except ET.ParseError:
+        return _parse_xmpmeta_only(text)
+
+
+def _parse_xmpmeta_only(text: str):
+    # Packets are sometimes followed by junk; retry on the x:xmpmeta element.
+    start, end = text.find("<x:xmpmeta"), text.rfind("</x:xmpmeta>")
+    if start < 0 or end < start:
+        return None
+    return ET.fromstring(text[start:end + len("</x:xmpmeta>")])
+
+
+def _xmp_title(root) -> str | None:
+    if root is None:
+        return None
+    for desc in root.iter(_RDF + "Description"):
+        if _clean(desc.get(_DC + "title")):
+            return _clean(desc.get(_DC + "title"))
+    for title in root.iter(_DC + "title"):
+        items = list(title.iter(_RDF + "li"))
+        default = [li for li in items if li.get(_XML_LANG, "").lower() == "x-default"]
+        for node in default + items + [title]:
+            if _clean(node.text):
+                return _clean(node.text)
+    return None
+
+
+def _xmp_subjects(root) -> list[str]:
+    if root is None:
+        return []
+    words = [desc.get(_DC + "subject") for desc in root.iter(_RDF + "Description")]
+    for subject in root.iter(_DC + "subject"):
+        items = list(subject.iter(_RDF + "li"))
+        words.extend([li.text for li in items] if items else [subject.text])
+    return [w for w in map(_clean, words) if w]
+
+
+def _iptc_bytes(img: Image.Image) -> bytes | None:
+    photoshop = img.info.get("photoshop")
+    if isinstance(photoshop, dict) and isinstance(photoshop.get(_PHOTOSHOP_IPTC), bytes):
+        return photoshop[_PHOTOSHOP_IPTC]
+    value = _tiff_tag(img, _TIFF_IPTC)
+    if isinstance(value, bytes):
+        return value
+    if isinstance(value, tuple) and all(isinstance(v, int) for v in value):
+        # Some writers type the tag LONG; re-pack in the file's byte order.
+        order = "<" if getattr(img.tag_v2, "prefix", b"MM") == b"II" else ">"
+        return struct.pack(f"{order}{len(value)}I", *value)
+    return None
+
+
+def _iim_records(data: bytes | None) -> dict[tuple[int, int], list[bytes]]:
+    """Parse IPTC IIM datasets: 0x1C, record, dataset, size, data."""
+    records: dict[tuple[int, int], list[bytes]] = {}
+    pos = 0
+    while data and pos + 5 <= len(data) and data[pos] == 0x1C:
+        key = (data[pos + 1], data[pos + 2])
+        size = int.from_bytes(data[pos + 3:pos + 5], "big")
+        pos += 5
+        if size & 0x8000:  # extended dataset: low bits = length of the size field
+            width = size & 0x7FFF
+            if width > 4:
+                break
+            size = int.from_bytes(data[pos:pos + width], "big")
+            pos += width
+        value = data[pos:pos + size]
+        if len(value) < size:  # truncated: keep the complete datasets only
+            break
+        records.setdefault(key, []).append(value)
+        pos += size
+    return records
+
+
+def _iptc_texts(records: dict, key: tuple[int, int]) -> list[str]:
+    return [t for t in map(_clean, records.get(key, [])) if t]

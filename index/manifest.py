@@ -1,0 +1,69 @@
+"""The archive's manifest: what it was built with, and which catalog state its stores reflect."""
+from __future__ import annotations
+
+import json
+import platform
+import re
+from pathlib import Path
+
+from .store import atomic_write
+
+FORMAT = 1
+FILE = "manifest.json"
+
+
+def store_file(layer: str) -> str:
+    return "vectors-" + re.sub(r"[^A-Za-z0-9._-]", "_", layer) + ".faiss"
+
+
+def versions() -> dict:
+    import faiss
+    import torch
+    import torchvision
+
+    from . import __version__
+
+    return {
+        "kinscope": __version__,
+        "python": platform.python_version(),
+        "torch": torch.__version__,
+        "torchvision": torchvision.__version__,
+        "faiss": faiss.__version__,
+    }
+
+
+def read(db: Path) -> dict | None:
+    path = Path(db) / FILE
+    if not path.exists():
+        return None
+    try:
+        manifest = json.loads(path.read_text())
+    except (OSError, ValueError) as exc:
+        raise ValueError(f"cannot read {path}: {exc}") from None
+    if manifest.get("format", 0) > FORMAT:
+        raise ValueError(f"{path} was written by a newer kinscope (format {manifest['format']}); upgrade kinscope")
+    return manifest
+
+
+def write(db: Path, manifest: dict) -> None:
+    atomic_write(Path(db) / FILE, json.dumps(manifest, indent=2, sort_keys=True).encode())
+
+
+def differences(manifest: dict, asked: dict) -> list[str]:
+    """Plain sentences for each setting asked for that the archive was not built with."""
+    built = {
+        "backbone": manifest["backbone"]["name"],
+        "layers": [layer["name"] for layer in manifest["layers"]],
+        "gem_p": manifest["pooling"]["p"],
+        "whiten": manifest["whitening"]["enabled"],
+        "weights_sha256": manifest["backbone"]["weights_sha256"],
+    }
+    out = []
+    for key, value in asked.items():
+        if value is None or key not in built:
+            continue
+        if key == "layers" and list(value) == built[key]:
+            continue
+        if value != built[key]:
+            out.append(f"{key}: the archive has {built[key]!r}, this command asks for {value!r}")
+    return out
