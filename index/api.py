@@ -14,11 +14,14 @@ from . import manifest as mf
 from .backbones import DEFAULT_BACKBONE, NAMES, Backbone, BackboneError, get_backbone
 from .catalog import Catalog
 from .decode import DecodeError, open_image
+from . import media
+from .exemplars import Exemplars
+from .explain import descriptor, explain_pair, patch_box
 from .layers import PRESET_HINTS, listing, resolve_layers
 from .pipeline import Job, run
 from .pooling import PCAWhitening
 from .scan import diff, normalize_roots, walk
-from .search import nearest
+from .search import nearest, row_filter
 from .store import VectorStore
 
 DEFAULT_GEM_P = 3.0
@@ -50,6 +53,7 @@ class Archive:
         self._embedder = None
         self._stores: dict[str, VectorStore] = {}
         self._whitening: dict[str, PCAWhitening] = {}
+        self._exemplars: dict[str, Exemplars] = {}
 
     # --- opening ----------------------------------------------------------------------------
     @classmethod
@@ -171,6 +175,19 @@ class Archive:
             self._stores[layer] = VectorStore.load(path) if path.exists() else VectorStore(entry["dim"])
         return self._stores[layer]
 
+    def exemplars(self, layer: str) -> Exemplars:
+        """Per channel, the archive positions that excite it most (collected while indexing)."""
+        if layer not in self._exemplars:
+            entry = self._layer(layer)
+            path = self.db / entry["file"].replace("vectors-", "exemplars-").replace(".faiss", ".npz")
+            self._exemplars[layer] = Exemplars.load(path) if path.exists() else Exemplars(entry["channels"])
+        return self._exemplars[layer]
+
+    def _save_exemplars(self) -> None:
+        for layer in self._exemplars:
+            entry = self._layer(layer)
+            self._exemplars[layer].save(self.db / entry["file"].replace("vectors-", "exemplars-").replace(".faiss", ".npz"))
+
     def whitening(self, layer: str) -> PCAWhitening | None:
         learned = self.manifest["whitening"]["learned"].get(layer)
         if learned and layer not in self._whitening:
@@ -210,10 +227,11 @@ class Archive:
 
         done_rows: list[dict] = []
 
-        def on_batch(ids, descriptors, rows):
+        def on_batch(ids, descriptors, rows, peaks):
             for layer, vectors in descriptors.items():
                 w = self.whitening(layer)
                 self.store(layer).add(ids, w.transform(vectors) if w else vectors)
+                self.exemplars(layer).update(ids, *peaks[layer])
             done_rows.extend(rows)
 
         def on_failures(failures):
@@ -229,6 +247,7 @@ class Archive:
 
         def checkpoint():
             self._save_stores()
+            self._save_exemplars()
             self.catalog.mark_embedded(done_rows, run_id)
             done_rows.clear()
 
@@ -309,46 +328,130 @@ class Archive:
         self._save_stores()
 
     # --- searching --------------------------------------------------------------------------
-    def describe(self, query, layer: str | None = None) -> np.ndarray:
-        """The descriptor of a query: a catalog id, a file path, image bytes or a PIL image."""
+    def describe(self, query, layer: str | None = None, box=None) -> np.ndarray:
+        """The descriptor of a query: a catalog id, a file path, image bytes or a PIL image.
+
+        With `box` ([x0, y0, x1, y1] as fractions of the image) only that region is described.
+        """
         name = self._layer(layer)["name"]
-        if isinstance(query, (int, np.integer)):
-            if int(query) not in self.catalog.get([int(query)]):
-                raise ArchiveError(f"no indexed item with id {int(query)}")
+        if isinstance(query, (int, np.integer)) and box is None:
+            self.item(int(query))
             try:
                 return self.store(name).reconstruct(np.array([int(query)]))[0]
             except RuntimeError:  # committed in the catalog but not in this store: `kinscope index` again
                 raise ArchiveError(f"item {int(query)} has no {name} descriptor yet; run kinscope index again") from None
-        image = self._query_image(query)
-        vector = self.embedder.embed_images([image])[name]
+        vector = self.embedder.embed_images([self.query_image(query, box)])[name]
         w = self.whitening(name)
         return (w.transform(vector) if w else vector)[0]
 
-    def _query_image(self, query) -> Image.Image:
+    def query_image(self, query, box=None) -> Image.Image:
+        """A query as an RGB image: an id (its file), a path, bytes or a PIL image; cropped to `box`."""
+        if isinstance(query, (int, np.integer)):
+            query = self.item(int(query))["path"]
         if isinstance(query, Image.Image):
-            return query.convert("RGB")
-        if isinstance(query, (str, os.PathLike)) and not os.path.isfile(query):
-            raise ArchiveError(f"query image not found: {query}")
-        try:
-            return open_image(query, min_side=self.backbone.input_size).image
-        except DecodeError as exc:
-            raise ArchiveError(f"cannot use {query if not isinstance(query, bytes) else 'the uploaded file'} as a query: {exc.reason}") from None
+            image = query.convert("RGB")
+        else:
+            if isinstance(query, (str, os.PathLike)) and not os.path.isfile(query):
+                raise ArchiveError(f"query image not found: {query}")
+            try:
+                # Decoded exactly as at indexing time, so a file's query descriptor equals its stored one;
+                # a region needs the full resolution.
+                image = open_image(query, min_side=self.backbone.input_size if box is None else None).image
+            except DecodeError as exc:
+                what = "the uploaded file" if isinstance(query, (bytes, bytearray)) else query
+                raise ArchiveError(f"cannot use {what} as a query: {exc.reason}") from None
+        if box is not None:
+            try:
+                image = media.crop(image, box)
+            except (ValueError, TypeError) as exc:
+                raise ArchiveError(f"bad region box {box!r}: {exc}") from None
+        return image
 
-    def search(self, query, *, layer: str | None = None, k: int = 10) -> dict:
-        """Items most similar to the query, best first; score = cosine similarity of descriptors."""
-        if not isinstance(k, (int, np.integer)) or k < 1:
-            raise ArchiveError(f"k must be a positive whole number, got {k!r}")
+    def search(self, query, *, layer: str | None = None, k: int = 10, box=None, offset: int = 0,
+               folder: str | None = None, date_from: str | None = None, date_to: str | None = None) -> dict:
+        """Items most similar to the query, best first; score = cosine similarity of descriptors.
+
+        `folder` keeps items below that folder; `date_from`/`date_to` ('YYYY-MM-DD') filter on the
+        capture date, else the file date; `offset` pages through the ranking.
+        """
+        for label, value in (("k", k), ("offset", offset)):
+            if not isinstance(value, (int, np.integer)) or value < (1 if label == "k" else 0):
+                raise ArchiveError(f"{label} must be a {'positive' if label == 'k' else 'non-negative'} whole number, got {value!r}")
         name = self._layer(layer)["name"]
-        vector = self.describe(query, name)
-        exclude = int(query) if isinstance(query, (int, np.integer)) else None
-        results = nearest(self.store(name), self.catalog, vector, int(k), exclude=exclude)
-        if exclude is not None:
-            q = {"id": exclude, "path": self.catalog.get([exclude])[exclude]["path"]}
+        vector = self.describe(query, name, box)
+        by_id = isinstance(query, (int, np.integer))
+        exclude = int(query) if by_id and box is None else None
+        results, more = nearest(self.store(name), self.catalog, vector, int(k), exclude=exclude, offset=int(offset),
+                                accept=row_filter(folder, date_from, date_to))
+        if by_id:
+            q = {"id": int(query), "path": self.item(int(query))["path"]}
         elif isinstance(query, (str, os.PathLike)):
             q = {"id": None, "path": os.path.abspath(os.fspath(query))}
         else:
             q = {"id": None, "path": None}
-        return {"query": q, "layer": name, "results": results}
+        if box is not None:
+            q["box"] = list(box)
+        return {"query": q, "layer": name, "offset": int(offset), "more": more, "results": results}
+
+    def explain(self, query, match: int, *, layer: str | None = None, box=None) -> dict:
+        """Why `match` (an id) is similar to the query: heat maps that sum to the score, region pairs,
+        and the channels that carried the score with the archive patches that excite them most."""
+        entry = self._layer(layer)
+        name = entry["name"]
+        if self.whitening(name):
+            raise ArchiveError(f"layer {name} is PCA-whitened; its scores do not split over positions")
+        row = self.item(int(match))
+        query_maps = self.embedder.maps_of_image(self.query_image(query, box))[name]
+        match_maps = self.embedder.maps_of_image(self.query_image(int(match)))[name]
+        result = explain_pair(query_maps, match_maps, self.manifest["pooling"]["p"])
+        stored = self.store(name).reconstruct(np.array([int(match)]))[0]
+        result["indexed_score"] = float(descriptor(query_maps, self.manifest["pooling"]["p"]) @ stored)
+        alive = set(self.catalog.get(
+            [e["id"] for c in result["channels"] for e in self.exemplars(name).top(c["channel"])]))
+        rows, cols = self.exemplars(name).grid
+        for c in result["channels"]:
+            c["exemplars"] = [
+                {**e, "box": patch_box(*e["cell"], rows, cols, entry["stride"], self.backbone.input_size)}
+                for e in self.exemplars(name).top(c["channel"], alive)[:4]
+            ]
+        result["query_map"] = np.round(result["query_map"], 7).tolist()
+        result["match_map"] = np.round(result["match_map"], 7).tolist()
+        return {"layer": name, "match": {k: row[k] for k in ("id", "path", "width", "height")}, **result}
+
+    # --- items and images -------------------------------------------------------------------
+    def item(self, item_id: int) -> dict:
+        """The catalog row of an indexed item (ArchiveError if there is none)."""
+        rows = self.catalog.get([int(item_id)])
+        if int(item_id) not in rows:
+            raise ArchiveError(f"no indexed item with id {int(item_id)}")
+        return rows[int(item_id)]
+
+    def items(self, *, offset: int = 0, limit: int = 60, folder: str | None = None) -> dict:
+        """A page of indexed items in catalog order, optionally below one folder."""
+        return self.catalog.page(offset=offset, limit=limit, folder=folder)
+
+    def folders(self) -> list[dict]:
+        return self.catalog.folders()
+
+    def thumbnail(self, item_id: int, size: int = 256) -> bytes:
+        return self._image_call(media.thumbnail, item_id, size, self.db / "thumbs")
+
+    def display_image(self, item_id: int) -> bytes:
+        return self._image_call(media.display, item_id)
+
+    def patch(self, item_id: int, box) -> bytes:
+        return self._image_call(media.patch, item_id, box)
+
+    def _image_call(self, fn, item_id, *args):
+        row = self.item(item_id)
+        try:
+            return fn(row, *args)
+        except DecodeError as exc:
+            raise ArchiveError(f"item {item_id} can no longer be read: {exc.reason}") from None
+        except OSError as exc:
+            raise ArchiveError(f"item {item_id} can no longer be read: {exc.strerror or exc}") from None
+        except ValueError as exc:
+            raise ArchiveError(str(exc)) from None
 
     # --- reporting --------------------------------------------------------------------------
     def info(self) -> dict:

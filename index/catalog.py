@@ -154,6 +154,25 @@ class Catalog:
                 out[row["id"]] = row
         return out
 
+    def page(self, *, offset: int = 0, limit: int = 60, folder: str | None = None) -> dict:
+        """Indexed items in id order, `limit` at a time, optionally below one folder."""
+        where, args = "status = 'ok'", []
+        if folder:
+            folder = folder.rstrip(os.sep)
+            where += " and (folder = ? or substr(folder, 1, ?) = ?)"
+            args += [folder, len(folder) + 1, folder + os.sep]
+        total = self.db.execute(f"select count(*) from images where {where}", args).fetchone()[0]
+        rows = list(self.db.query(f"select * from images where {where} order by id limit ? offset ?",
+                                  [*args, int(limit), int(offset)]))
+        for row in rows:
+            row["keywords"] = json.loads(row["keywords"]) if row["keywords"] else []
+        return {"total": total, "offset": int(offset), "items": rows}
+
+    def folders(self) -> list[dict]:
+        """Every folder holding indexed items, with its count."""
+        q = "select folder, count(*) as count from images where status = 'ok' group by folder order by folder"
+        return list(self.db.query(q))
+
     def by_path(self, path: str) -> dict | None:
         rows = list(self.db.query("select * from images where path = ?", [path]))
         return rows[0] if rows else None

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import os
 import sys
 
 import click
@@ -72,19 +73,30 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, q
 @click.option("--id", "item_id", type=int, help="Search by an indexed item instead of a file.")
 @click.option("--layer", help="Layer to compare on (default: the archive's default layer).")
 @click.option("-k", default=10, show_default=True, type=click.IntRange(1, 10000), help="How many results.")
+@click.option("--box", help="Search by a region only: x0,y0,x1,y1 as fractions of the image (0..1).")
+@click.option("--folder", help="Only results below this folder.")
 @click.option("--json", "as_json", is_flag=True, help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
-def search(image, db, item_id, layer, k, as_json):
+def search(image, db, item_id, layer, k, box, folder, as_json):
     """Find the items most like IMAGE (any file) or like indexed item --id N."""
     if (image is None) == (item_id is None):
         _fail(click.UsageError("give either IMAGE or --id N"))
     try:
+        region = [float(v) for v in box.split(",")] if box else None
+        if region is not None and len(region) != 4:
+            raise ValueError
+    except ValueError:
+        _fail(click.UsageError("--box takes four fractions: x0,y0,x1,y1"))
+    try:
         with Archive.open(db) as archive:
-            result = archive.search(item_id if item_id is not None else image, layer=layer, k=k)
+            folder = os.path.abspath(folder) if folder else None
+            result = archive.search(item_id if item_id is not None else image, layer=layer, k=k, box=region,
+                                    folder=folder)
     except ArchiveError as exc:
         _fail(exc)
     if as_json:
         keys = ("id", "path", "score", "width", "height")
-        result = {**result, "results": [{key: r[key] for key in keys} for r in result["results"]]}
+        result = {key: result[key] for key in ("query", "layer")} | {
+            "results": [{key: r[key] for key in keys} for r in result["results"]]}
         click.echo(json.dumps(result, indent=2))
         return
     click.echo(f"layer {result['layer']}; score = cosine similarity (1.0 = identical descriptor)")

@@ -40,9 +40,23 @@ class Embedder:
 
     def embed(self, batch: np.ndarray) -> dict[str, np.ndarray]:
         """(N, 3, S, S) preprocessed inputs -> layer name -> (N, C) L2-normalised GeM descriptors."""
+        return self.embed_with_peaks(batch)[0]
+
+    def embed_with_peaks(self, batch: np.ndarray) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:
+        """Descriptors, plus per layer each channel's peak (N, C), its flat position (N, C) and the grid (H, W)."""
         maps = self.feature_maps(batch)
+        descriptors, peaks = {}, {}
         with torch.inference_mode():
-            return {name: l2_normalize(gem(fmap, self.p).numpy()) for name, fmap in maps.items()}
+            for name, fmap in maps.items():
+                descriptors[name] = l2_normalize(gem(fmap, self.p).numpy())
+                values, where = fmap.flatten(2).max(dim=2)
+                peaks[name] = (values.numpy(), where.numpy().astype(np.int64), tuple(fmap.shape[-2:]))
+        return descriptors, peaks
+
+    def maps_of_image(self, image: Image.Image) -> dict[str, np.ndarray]:
+        """One image -> layer name -> (C, H, W) feature map as float32 numpy."""
+        maps = self.feature_maps(self.preprocess(image)[None])
+        return {name: fmap[0].numpy() for name, fmap in maps.items()}
 
     def embed_images(self, images: list[Image.Image]) -> dict[str, np.ndarray]:
         return self.embed(np.stack([self.preprocess(im) for im in images]))

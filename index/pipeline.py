@@ -76,7 +76,7 @@ def bounded_map(fn: Callable, items: Iterable, pool: ThreadPoolExecutor, window:
 def run(
     jobs: list[Job],
     embedder: Embedder,
-    on_batch: Callable[[np.ndarray, dict[str, np.ndarray], list[dict]], None],
+    on_batch: Callable[[np.ndarray, dict[str, np.ndarray], list[dict], dict[str, tuple]], None],
     on_failures: Callable[[list[dict]], None],
     checkpoint: Callable[[], None],
     *,
@@ -85,7 +85,7 @@ def run(
     readers: int = 2,
     progress: bool = True,
 ) -> RunCounts:
-    """Embed every job; call on_batch(ids, descriptors, rows) per batch and checkpoint() regularly."""
+    """Embed every job; call on_batch(ids, descriptors, rows, peaks) per batch and checkpoint() regularly."""
     counts = RunCounts()
     bar = tqdm(total=len(jobs), unit="img", disable=not progress, file=sys.stderr, dynamic_ncols=True,
                desc="indexing")
@@ -95,8 +95,8 @@ def run(
     def flush() -> None:
         nonlocal xs, rows, since_checkpoint
         if xs:
-            descriptors = embedder.embed(np.stack(xs))
-            on_batch(np.array([r["id"] for r in rows], np.int64), descriptors, rows)
+            descriptors, peaks = embedder.embed_with_peaks(np.stack(xs))
+            on_batch(np.array([r["id"] for r in rows], np.int64), descriptors, rows, peaks)
             counts.embedded += len(rows)
             since_checkpoint += len(rows)
             bar.update(len(rows))

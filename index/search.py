@@ -1,5 +1,8 @@
-"""Query image or indexed item -> descriptor -> FAISS -> catalog rows, best first."""
+"""Query descriptor -> FAISS -> catalog rows, best first, with folder/date filters and paging."""
 from __future__ import annotations
+
+from datetime import datetime, timezone
+from typing import Callable
 
 import numpy as np
 
@@ -10,23 +13,58 @@ RESULT_KEYS = ("id", "path", "score", "width", "height", "folder", "name", "size
                "captured_at", "camera", "title", "keywords", "format")
 
 
-def nearest(store: VectorStore, catalog: Catalog, vector: np.ndarray, k: int, exclude: int | None = None) -> list[dict]:
-    """The k best catalog rows for one descriptor; ids not (yet) committed in the catalog are skipped."""
+def nearest(
+    store: VectorStore,
+    catalog: Catalog,
+    vector: np.ndarray,
+    k: int,
+    *,
+    exclude: int | None = None,
+    offset: int = 0,
+    accept: Callable[[dict], bool] | None = None,
+) -> tuple[list[dict], bool]:
+    """Results offset..offset+k for one descriptor, and whether more exist.
+
+    Ids not (yet) committed in the catalog and rows the filter rejects are skipped; FAISS is asked
+    for more neighbours until enough rows pass (never more than the store holds).
+    """
     (d,) = vector.shape
-    want = k + (1 if exclude is not None else 0)
+    want = offset + k + 1  # one extra tells whether there is a next page
     fetch = want
     while True:
         scores, ids = store.search(vector[None, :], fetch)
         pairs = [(int(i), float(s)) for i, s in zip(ids[0], scores[0]) if i >= 0 and i != exclude]
         rows = catalog.get([i for i, _ in pairs])
-        results = [_result(rows[i], s) for i, s in pairs if i in rows]
-        # Rows still pending (an indexer is writing) are dropped; fetch more until k are found.
-        if len(results) >= k or fetch >= len(store):
-            return results[:k]
-        fetch = min(len(store), fetch * 2 + 8)
+        results = [_result(rows[i], s) for i, s in pairs if i in rows and (accept is None or accept(rows[i]))]
+        if len(results) >= want or fetch >= len(store):
+            return results[offset : offset + k], len(results) > offset + k
+        fetch = min(len(store), fetch * 4 + 16)
+
+
+def row_filter(folder: str | None = None, date_from: str | None = None, date_to: str | None = None):
+    """A predicate on catalog rows: below a folder, and dated (capture date, else file date) in a range."""
+    if not (folder or date_from or date_to):
+        return None
+    prefix = folder.rstrip("/") + "/" if folder else None
+
+    def accept(row: dict) -> bool:
+        if prefix and not (row["folder"] == folder.rstrip("/") or row["path"].startswith(prefix)):
+            return False
+        day = item_date(row)
+        return not ((date_from and day < date_from) or (date_to and day > date_to[:10]))
+
+    return accept
+
+
+def item_date(row: dict) -> str:
+    """'YYYY-MM-DD': the EXIF capture date when known, else the file's modification date (UTC)."""
+    if row.get("captured_at"):
+        return row["captured_at"][:10]
+    return datetime.fromtimestamp(row["mtime"] or 0, timezone.utc).strftime("%Y-%m-%d")
 
 
 def _result(row: dict, score: float) -> dict:
     out = {key: row.get(key) for key in RESULT_KEYS}
     out["score"] = round(score, 6)
+    out["date"] = item_date(row)
     return out
