@@ -127,6 +127,20 @@ class Archive:
             "versions": mf.versions(),
         }
 
+    def refresh(self) -> bool:
+        """Pick up what an indexer committed since this archive was opened; True if anything changed."""
+        try:
+            current = mf.read(self.db)
+        except ValueError:
+            return False
+        if not current or current.get("generation") == self.manifest.get("generation"):
+            return False
+        self.manifest = current
+        self._stores.clear()
+        self._exemplars.clear()
+        self._whitening.clear()
+        return True
+
     # --- lazily built parts -----------------------------------------------------------------
     @property
     def layer_names(self) -> list[str]:
@@ -451,6 +465,17 @@ class Archive:
         except OSError as exc:
             raise ArchiveError(f"item {item_id} can no longer be read: {exc.strerror or exc}") from None
         except ValueError as exc:
+            raise ArchiveError(str(exc)) from None
+
+    # --- duplicates -------------------------------------------------------------------------
+    def duplicates(self, *, layer: str | None = None, threshold: float | None = None, normalised: bool = True,
+                   progress: bool = False) -> dict:
+        """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md."""
+        from . import duplicates as dup
+
+        try:
+            return dup.from_archive(self, layer=layer, threshold=threshold, normalised=normalised, progress=progress)
+        except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
 
     # --- reporting --------------------------------------------------------------------------

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import json
 import os
-import time
+import sqlite3
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Iterable
@@ -38,7 +38,8 @@ def now() -> str:
 
 class Catalog:
     def __init__(self, path: Path):
-        self.db = sqlite_utils.Database(str(path))
+        # One connection, usable from the web server's threads (the web layer serialises calls).
+        self.db = sqlite_utils.Database(sqlite3.connect(str(path), check_same_thread=False))
         self.db.execute("PRAGMA journal_mode=WAL")  # readers see the last commit while indexing runs
         self.db.execute("PRAGMA busy_timeout=10000")
         self._create()

@@ -161,5 +161,29 @@ def layers(backbone, as_json):
                "Any other node name of the network's graph is accepted too.")
 
 
+@main.command()
+@click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (loopback by default).")
+@click.option("--port", default=8470, show_default=True, type=click.IntRange(1, 65535))
+@click.option("--token", envvar="KINSCOPE_TOKEN", help="Access token every request must carry; required off loopback "
+              "(or set KINSCOPE_TOKEN).")
+def serve(db, host, port, token):
+    """Start the search page on this machine (waitress WSGI server)."""
+    try:
+        from web.serve import ServeError, check_binding, serve as run_server
+    except ImportError:
+        _fail("the web page needs Flask and waitress: pip install -e .")
+    try:
+        check_binding(host, token)
+        with Archive.open(db):
+            pass
+    except (ServeError, ArchiveError) as exc:
+        _fail(exc)
+    shown = f"[{host}]" if ":" in host else host
+    click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + (f"?token=..." if token else ""))
+    click.echo("Only this machine can reach it on 127.0.0.1. Stop with Ctrl-C.")
+    run_server(db, host, port, token)
+
+
 if __name__ == "__main__":
     main()

@@ -1,0 +1,186 @@
+"""The JSON API: everything the page does, for other archive tools too (see /api/openapi.json)."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+from flask import Blueprint, Response, jsonify, request, url_for
+
+from index.api import ArchiveError
+from index.decode import DecodeError, open_image
+
+from . import params
+from .archive_access import holder
+
+bp = Blueprint("api", __name__, url_prefix="/api")
+OPENAPI = Path(__file__).with_name("openapi.json")
+
+
+@bp.errorhandler(params.BadRequest)
+@bp.errorhandler(params.NotFound)
+def _client_error(exc):
+    return jsonify(error=str(exc)), exc.status
+
+
+@bp.errorhandler(ArchiveError)
+def _archive_error(exc):
+    message = str(exc)
+    status = 404 if message.startswith("no indexed item") else 400
+    return jsonify(error=message), status
+
+
+def _summary(row: dict) -> dict:
+    keys = ("id", "path", "name", "folder", "width", "height", "size", "mtime", "date", "captured_at", "camera",
+            "title", "keywords", "format", "score")
+    out = {k: row[k] for k in keys if k in row}
+    out["thumbnail"] = url_for("media.thumbnail", item_id=row["id"])
+    out["page"] = url_for("pages.item", item_id=row["id"])
+    return out
+
+
+def _query():
+    """The query named by the request: an uploaded file, an earlier upload's token, or an item id."""
+    h = holder()
+    if "file" in request.files:
+        return _decode_upload(), None
+    token = params.text("upload", 40)
+    if token:
+        return h.recall(token), token
+    item = params.integer("item")
+    if item is not None:
+        return item, None
+    raise params.BadRequest("give a query: upload a file, or pass upload=TOKEN or item=ID")
+
+
+def _decode_upload():
+    """Content is checked by decoding it (never by its name or declared type)."""
+    upload = request.files["file"]
+    data = upload.read()
+    if not data:
+        raise params.BadRequest("the uploaded file is empty")
+    try:
+        from flask import current_app
+
+        return open_image(data, max_pixels=current_app.config["MAX_UPLOAD_PIXELS"]).image
+    except DecodeError as exc:
+        raise params.BadRequest(f"the uploaded file cannot be used as a query: {exc.reason}") from None
+
+
+@bp.get("/openapi.json")
+def openapi():
+    return Response(OPENAPI.read_text(), mimetype="application/json")
+
+
+@bp.get("/info")
+def info():
+    h = holder()
+    with h.lock:
+        h.archive.refresh()
+        data = h.archive.info()
+    return jsonify(
+        images=data["images"], pending=data["pending"], failed=data["failed"], backbone=data["backbone"]["name"],
+        default_layer=data["default_layer"], pooling=data["pooling"],
+        layers=[{k: l[k] for k in ("name", "node", "channels", "stride", "hint", "vectors")} for l in data["layers"]],
+        failures=data["failures"][:200],
+    )
+
+
+@bp.get("/folders")
+def folders():
+    h = holder()
+    with h.lock:
+        return jsonify(folders=h.archive.folders())
+
+
+@bp.get("/items")
+def items():
+    h = holder()
+    offset, limit = params.integer("offset", 0), params.integer("limit", 60, 1, 500)
+    with h.lock:
+        page = h.archive.items(offset=offset, limit=limit, folder=params.text("folder", 4096))
+    return jsonify(total=page["total"], offset=page["offset"], items=[_summary(r) for r in page["items"]])
+
+
+@bp.get("/items/<int:item_id>")
+def item(item_id: int):
+    h = holder()
+    with h.lock:
+        row = h.archive.item(item_id)
+    out = _summary(row)
+    out.update(sha256=row["sha256"], indexed_at=row["indexed_at"], image=url_for("media.image", item_id=item_id))
+    return jsonify(out)
+
+
+@bp.post("/queries")
+def upload_query():
+    """Keep an uploaded query for later searches, region searches and explanations."""
+    if "file" not in request.files:
+        raise params.BadRequest("send the image as multipart form field 'file'")
+    image = _decode_upload()
+    token = holder().remember(image)
+    return jsonify(upload=token, width=image.width, height=image.height,
+                   image=url_for("media.upload_image", token=token)), 201
+
+
+@bp.route("/search", methods=["GET", "POST"])
+def search():
+    h = holder()
+    query, token = _query()
+    if "file" in request.files:
+        token = h.remember(query)
+    k = params.integer("k", 24, 1, 500)
+    offset = params.integer("offset", 0, 0, 100_000)
+    with h.lock:
+        h.archive.refresh()
+        result = h.archive.search(
+            query, layer=params.layer(h.archive.layer_names), k=k, offset=offset, box=params.box(),
+            folder=params.text("folder", 4096), date_from=params.date("date_from"), date_to=params.date("date_to"),
+        )
+    result["query"]["upload"] = token
+    result["results"] = [_summary(r) for r in result["results"]]
+    return jsonify(result)
+
+
+@bp.get("/explain")
+def explain():
+    h = holder()
+    query, token = _query()
+    match = params.integer("match")
+    if match is None:
+        raise params.BadRequest("give match=ID, the result to explain")
+    with h.lock:
+        out = h.archive.explain(query, match, layer=params.layer(h.archive.layer_names), box=params.box())
+        match_row = h.archive.item(match)
+    for channel in out["channels"]:
+        for e in channel["exemplars"]:
+            e["patch"] = url_for("media.patch", item_id=e["id"], box=",".join(f"{v:.4f}" for v in e["box"]))
+    out["match"] = _summary({**out["match"], **match_row})
+    out["query"] = {"upload": token, "item": query if isinstance(query, int) else None, "box": params.box()}
+    return jsonify(out)
+
+
+@bp.app_errorhandler(413)
+def too_large(exc):
+    from flask import current_app
+
+    limit = current_app.config["MAX_CONTENT_LENGTH"] // (1024 * 1024)
+    return jsonify(error=f"the upload is larger than this server accepts ({limit} MB)"), 413
+
+
+@bp.app_errorhandler(404)
+def not_found(exc):
+    if request.path.startswith("/api/"):
+        return jsonify(error="no such address"), 404
+    from .pages import error_page
+
+    return error_page("There is no page at this address.", 404)
+
+
+@bp.app_errorhandler(405)
+def not_allowed(exc):
+    return jsonify(error="that method is not allowed here"), 405
+
+
+@bp.app_errorhandler(500)
+def server_error(exc):
+    return jsonify(error="something went wrong on the server; the details are in its log"), 500

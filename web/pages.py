@@ -1,0 +1,35 @@
+"""HTML pages: the search page and an item page. Their behaviour is in static/app.js."""
+from __future__ import annotations
+
+from flask import Blueprint, render_template
+
+from index.api import ArchiveError
+
+from .archive_access import holder
+
+bp = Blueprint("pages", __name__)
+
+
+def error_page(message: str, status: int):
+    return render_template("error.html", message=message), status
+
+
+@bp.get("/")
+def home():
+    h = holder()
+    with h.lock:
+        h.archive.refresh()
+        info = h.archive.info()
+    return render_template("search.html", info=info)
+
+
+@bp.get("/items/<int:item_id>")
+def item(item_id: int):
+    h = holder()
+    try:
+        with h.lock:
+            row = h.archive.item(item_id)
+            info = h.archive.info()
+    except ArchiveError as exc:
+        return error_page(str(exc), 404)
+    return render_template("item.html", item=row, info=info)

@@ -1,0 +1,64 @@
+"""Request parameters, validated: anything unexpected becomes a 400 with a plain message."""
+from __future__ import annotations
+
+import re
+
+from flask import request
+
+
+class BadRequest(Exception):
+    status = 400
+
+
+class NotFound(Exception):
+    status = 404
+
+
+def integer(name: str, default: int | None = None, lo: int = 0, hi: int = 10**9) -> int | None:
+    raw = request.values.get(name)
+    if raw is None or raw == "":
+        return default
+    if not re.fullmatch(r"\d{1,10}", raw):
+        raise BadRequest(f"{name} must be a whole number")
+    value = int(raw)
+    if not lo <= value <= hi:
+        raise BadRequest(f"{name} must be between {lo} and {hi}")
+    return value
+
+
+def box(name: str = "box") -> list[float] | None:
+    raw = request.values.get(name)
+    if not raw:
+        return None
+    try:
+        values = [float(v) for v in raw.split(",")]
+    except ValueError:
+        raise BadRequest(f"{name} must be four fractions x0,y0,x1,y1") from None
+    if len(values) != 4 or not (0 <= values[0] < values[2] <= 1 and 0 <= values[1] < values[3] <= 1):
+        raise BadRequest(f"{name} must be four fractions 0 <= x0 < x1 <= 1, 0 <= y0 < y1 <= 1")
+    return values
+
+
+def date(name: str) -> str | None:
+    raw = request.values.get(name)
+    if not raw:
+        return None
+    if not re.fullmatch(r"\d{4}-\d{2}-\d{2}", raw):
+        raise BadRequest(f"{name} must be a date YYYY-MM-DD")
+    return raw
+
+
+def text(name: str, max_len: int = 200) -> str | None:
+    raw = request.values.get(name)
+    if raw is None or raw == "":
+        return None
+    if len(raw) > max_len or "\x00" in raw:
+        raise BadRequest(f"{name} is too long or holds forbidden characters")
+    return raw
+
+
+def layer(names: list[str]) -> str | None:
+    raw = text("layer", 100)
+    if raw is not None and raw not in names:
+        raise BadRequest(f"unknown layer {raw!r}; this archive has: {', '.join(names)}")
+    return raw
