@@ -1,3 +1,8 @@
-from .cli import main
+import sys
+
+try:
+    from .cli import main
+except KeyboardInterrupt:  # Ctrl-C while the libraries load: nothing has been touched yet
+    sys.exit(130)
 
 main(prog_name="kinscope")

@@ -209,7 +209,8 @@ class Archive:
         return self._whitening.get(layer)
 
     # --- indexing ---------------------------------------------------------------------------
-    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 16) -> dict:
+    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 16,
+            checkpoint_every: int = 512) -> dict:
         """Index every image below these paths, incrementally; returns the run's counts."""
         try:
             roots = normalize_roots(paths)
@@ -218,9 +219,9 @@ class Archive:
         if not roots:
             raise ArchiveError("give at least one file or folder to index")
         with self._writer_lock():
-            return self._add(roots, progress, batch_size)
+            return self._add(roots, progress, batch_size, checkpoint_every)
 
-    def _add(self, roots: list[str], progress: bool, batch_size: int) -> dict:
+    def _add(self, roots: list[str], progress: bool, batch_size: int, checkpoint_every: int = 512) -> dict:
         self.reconcile()
         run_id = self.catalog.start_run(roots)
         errors: list[dict] = []
@@ -266,7 +267,7 @@ class Archive:
             done_rows.clear()
 
         counts = run(jobs, self.embedder if jobs else None, on_batch, on_failures, checkpoint,
-                     batch_size=batch_size, progress=progress) if jobs else None
+                     batch_size=batch_size, checkpoint_every=checkpoint_every, progress=progress) if jobs else None
         embedded = counts.embedded if counts else 0
         failed = (counts.failed if counts else 0) + len(errors)
         interrupted = bool(counts and counts.interrupted)
@@ -477,6 +478,19 @@ class Archive:
             return dup.from_archive(self, layer=layer, threshold=threshold, normalised=normalised, progress=progress)
         except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
+
+    # --- verification ---------------------------------------------------------------------
+    def check(self) -> dict:
+        """Verify catalog, stores, manifest and files; read-only. {'ok', 'checked', 'findings'}."""
+        from .check import check
+
+        return check(self).as_dict()
+
+    def repair(self, *, progress: bool = True) -> dict:
+        """Fix what `check` finds: orphans and temporary files removed, missing descriptors re-embedded."""
+        from .check import repair
+
+        return repair(self, progress=progress)
 
     # --- reporting --------------------------------------------------------------------------
     def info(self) -> dict:

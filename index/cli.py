@@ -42,16 +42,21 @@ def main() -> None:
 @click.option("--gem-p", type=float, help="GeM pooling exponent (default 3; 1 = average pooling).")
 @click.option("--whiten/--no-whiten", default=None, help="Learn PCA whitening once the archive holds 1000 images.")
 @click.option("--batch-size", default=16, show_default=True, type=click.IntRange(1, 256))
+@click.option("--checkpoint-every", default=512, show_default=True, type=click.IntRange(1, 100_000),
+              help="Save progress after this many images (a crash loses at most this many).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
 @click.option("--json", "as_json", is_flag=True, help="Print the run's counts as JSON.")
-def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, quiet, as_json):
+def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, checkpoint_every, quiet, as_json):
     """Index every image below PATHS into --db; re-running only does what changed."""
     try:
         with Archive.open(db, create=True, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
                           whiten=whiten, weights=weights) as archive:
-            report = archive.add(paths, progress=not quiet, batch_size=batch_size)
+            report = archive.add(paths, progress=not quiet, batch_size=batch_size, checkpoint_every=checkpoint_every)
     except ArchiveError as exc:
         _fail(exc)
+    except KeyboardInterrupt:  # before the embedding loop (which handles Ctrl-C itself): nothing half-done
+        click.echo("Interrupted before any image was embedded. Run the same command again to resume.", err=True)
+        sys.exit(130)
     if as_json:
         click.echo(json.dumps(report, indent=2))
         return
@@ -159,6 +164,33 @@ def layers(backbone, as_json):
         click.echo(f"  {row['node']:<22} {row['channels']:>8} {row['stride']:>6}  {preset}")
     click.echo(f"Default layers: {', '.join(data['default_layers'])}; search defaults to {data['default_search_layer']}. "
                "Any other node name of the network's graph is accepted too.")
+
+
+@main.command()
+@click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
+@click.option("--repair", is_flag=True, help="Fix what can be fixed; re-embed only images whose descriptors are missing.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON.")
+def check(db, repair, as_json):
+    """Verify the archive: SQLite integrity, catalog against every vector store, manifest, orphans.
+
+    Exits 0 only when everything agrees."""
+    try:
+        with Archive.open(db) as archive:
+            repaired = archive.repair(progress=not as_json) if repair else None
+            report = archive.check()
+    except ArchiveError as exc:
+        _fail(exc)
+    if as_json:
+        click.echo(json.dumps({**report, "repaired": repaired}, indent=2))
+    else:
+        if repaired is not None:
+            click.echo("repaired: " + ", ".join(f"{k} {v}" for k, v in repaired.items()))
+        for key, value in report["checked"].items():
+            click.echo(f"checked   {key}: {value}")
+        for f in report["findings"]:
+            click.echo(f"{f['severity']:<8}  {f['message']}" + (f" -> {f['fix']}" if f["fix"] else ""))
+        click.echo("everything agrees" if report["ok"] else "the archive needs attention (see above)")
+    sys.exit(0 if report["ok"] else 1)
 
 
 @main.command()

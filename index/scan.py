@@ -69,6 +69,12 @@ def walk(roots: list[str], errors: list[dict]) -> Iterator[dict]:
 def _stat_all(paths: list[str], errors: list[dict]) -> Iterator[dict]:
     for path in paths:
         try:
+            path.encode("utf-8")
+        except UnicodeEncodeError:  # bytes that are not UTF-8 in the name: SQLite text cannot hold it
+            shown = os.fsencode(path).decode("utf-8", "backslashreplace")
+            errors.append({"path": shown, "reason": "the file name is not valid UTF-8; rename the file to index it"})
+            continue
+        try:
             st = os.stat(path)
         except OSError as exc:
             errors.append({"path": path, "reason": f"cannot read file: {exc.strerror}"})
