@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import fcntl
 import os
+import sqlite3
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Iterable
@@ -219,7 +220,16 @@ class Archive:
         if not roots:
             raise ArchiveError("give at least one file or folder to index")
         with self._writer_lock():
-            return self._add(roots, progress, batch_size, checkpoint_every)
+            try:
+                return self._add(roots, progress, batch_size, checkpoint_every)
+            except (OSError, sqlite3.OperationalError) as exc:
+                # Full disk, read-only folder...: every file is replaced atomically, so what is on disk
+                # is the last checkpoint, whole.
+                reason = getattr(exc, "strerror", None) or str(exc)
+                raise ArchiveError(
+                    f"cannot write to the database folder {self.db}: {reason}. Nothing was half-written; "
+                    "the archive is as of its last checkpoint. Free space or fix permissions, then run again."
+                ) from None
 
     def _add(self, roots: list[str], progress: bool, batch_size: int, checkpoint_every: int = 512) -> dict:
         self.reconcile()
@@ -290,7 +300,10 @@ class Archive:
 
         class _Lock:
             def __enter__(self):
-                self.fh = open(archive.db / "indexer.lock", "a+")
+                try:
+                    self.fh = open(archive.db / "indexer.lock", "a+")
+                except OSError as exc:
+                    raise ArchiveError(f"cannot write to the database folder {archive.db}: {exc.strerror}") from None
                 try:
                     fcntl.flock(self.fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
                 except BlockingIOError:
@@ -436,6 +449,8 @@ class Archive:
     # --- items and images -------------------------------------------------------------------
     def item(self, item_id: int) -> dict:
         """The catalog row of an indexed item (ArchiveError if there is none)."""
+        if not 0 <= int(item_id) < 2**62:  # SQLite integers are 64-bit; nothing outside that range exists
+            raise ArchiveError(f"no indexed item with id {int(item_id)}")
         rows = self.catalog.get([int(item_id)])
         if int(item_id) not in rows:
             raise ArchiveError(f"no indexed item with id {int(item_id)}")

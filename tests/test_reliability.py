@@ -149,3 +149,64 @@ def test_ctrl_c_stops_after_the_batch_and_says_how_to_resume(tmp_path):
     assert again.returncode == 0
     archive, report, ok, stores = _agrees(db)
     assert report["ok"] and len(ok) == 60
+
+
+def test_a_full_disk_mid_run_gives_a_clear_error_and_leaves_whole_files(tmp_path, monkeypatch):
+    import errno
+
+    import index.manifest
+    import index.store
+    from index.api import ArchiveError
+
+    imgs = _folder(tmp_path / "imgs", 12)
+    archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
+    real = index.store.atomic_write
+    calls = {"n": 0}
+
+    def filling_disk(path, data):
+        calls["n"] += 1
+        if calls["n"] > 4:  # the first checkpoints succeed, then the disk is full
+            raise OSError(errno.ENOSPC, "No space left on device", str(path))
+        real(path, data)
+
+    monkeypatch.setattr(index.store, "atomic_write", filling_disk)
+    monkeypatch.setattr(index.manifest, "atomic_write", filling_disk)
+    with pytest.raises(ArchiveError, match="No space left on device.*Nothing was half-written"):
+        archive.add([imgs], progress=False, batch_size=2, checkpoint_every=2)
+    monkeypatch.undo()
+    assert not list((tmp_path / "db").glob(".*.tmp"))  # no temporary file left behind
+    again = Archive.open(tmp_path / "db")
+    again.add([imgs], progress=False)
+    archive, report, ok, stores = _agrees(tmp_path / "db")
+    assert report["ok"] and len(ok) == 12
+
+
+def test_a_database_from_a_newer_kinscope_is_refused(tmp_path):
+    import json
+
+    from index.api import ArchiveError
+
+    Archive.open(tmp_path / "db", create=True, layers=["colour"]).add([_folder(tmp_path / "imgs", 2)], progress=False)
+    manifest = json.loads((tmp_path / "db" / "manifest.json").read_text())
+    manifest["format"] = 99
+    (tmp_path / "db" / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(ArchiveError, match="newer kinscope"):
+        Archive.open(tmp_path / "db")
+
+
+def test_the_archive_folder_is_never_written_to(tmp_path):
+    """Indexing, searching, checking and thumbnails leave every archive file byte-identical."""
+    import hashlib
+
+    imgs = _folder(tmp_path / "imgs", 5)
+
+    def snapshot():
+        return {p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime) for p in sorted(imgs.rglob("*"))}
+
+    before = snapshot()
+    archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
+    archive.add([imgs], progress=False)
+    archive.search(str(imgs / "img-001.png"), k=3)
+    archive.thumbnail(1)
+    archive.check()
+    assert snapshot() == before
