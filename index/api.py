@@ -1,6 +1,7 @@
 """Archive: the one facade that the CLI, the web app and scripts call."""
 from __future__ import annotations
 
+import errno
 import fcntl
 import os
 import sqlite3
@@ -26,6 +27,7 @@ from .search import nearest, row_filter
 from .store import VectorStore
 
 DEFAULT_GEM_P = 3.0
+WRITE_ERRNOS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EPERM, errno.EDQUOT, errno.EFBIG}
 DEFAULT_WHITEN_MIN_IMAGES = 1000
 
 
@@ -225,6 +227,8 @@ class Archive:
             except (OSError, sqlite3.OperationalError) as exc:
                 # Full disk, read-only folder...: every file is replaced atomically, so what is on disk
                 # is the last checkpoint, whole.
+                if isinstance(exc, OSError) and exc.errno not in WRITE_ERRNOS:
+                    raise
                 reason = getattr(exc, "strerror", None) or str(exc)
                 raise ArchiveError(
                     f"cannot write to the database folder {self.db}: {reason}. Nothing was half-written; "
