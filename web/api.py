@@ -8,6 +8,7 @@ from flask import Blueprint, Response, jsonify, request, url_for
 
 from index.api import ArchiveError
 from index.decode import DecodeError, open_image
+from index.search import item_date
 
 from . import params
 from .archive_access import holder
@@ -33,6 +34,8 @@ def _summary(row: dict) -> dict:
     keys = ("id", "path", "name", "folder", "width", "height", "size", "mtime", "date", "captured_at", "camera",
             "title", "keywords", "format", "score")
     out = {k: row[k] for k in keys if k in row}
+    if "date" not in out and "mtime" in row:
+        out["date"] = item_date(row)  # catalog rows (items, explain's match) get it as search results do
     out["thumbnail"] = url_for("media.thumbnail", item_id=row["id"])
     out["page"] = url_for("pages.item", item_id=row["id"])
     return out

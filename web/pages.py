@@ -1,6 +1,8 @@
 """HTML pages: the search page and an item page. Their behaviour is in static/app.js."""
 from __future__ import annotations
 
+from datetime import datetime, timezone
+
 from flask import Blueprint, render_template
 
 from index.api import ArchiveError
@@ -8,6 +10,14 @@ from index.api import ArchiveError
 from .archive_access import holder
 
 bp = Blueprint("pages", __name__)
+
+
+@bp.app_template_filter("timestamp")
+def timestamp(value) -> str:
+    """A file time (seconds since 1970) as 'YYYY-MM-DD HH:MM UTC' for people."""
+    if value is None:
+        return "unknown"
+    return datetime.fromtimestamp(float(value), timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
 
 
 def error_page(message: str, status: int):

@@ -1,0 +1,319 @@
+"""The search page in a real browser: headless Chromium (the Debian package) driven by Playwright.
+
+A small archive is copied from demo_archive/ (originals of a few re-scans, a few re-scans, other
+swatches), indexed, and served by `kinscope serve` on a free loopback port. The tests use the page as a
+person would: upload, read results, open an explanation, draw a region, change the layer, pick an
+archive item, and hit a bad upload. Screenshots go to test-output/screenshots/ (gitignored).
+"""
+from __future__ import annotations
+
+import csv
+import os
+import shutil
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+import pytest
+
+CHROMIUM = Path("/usr/bin/chromium")
+if not CHROMIUM.exists():
+    pytest.skip("the browser tests need Debian's chromium at /usr/bin/chromium (apt-get install chromium)",
+                allow_module_level=True)
+sync_api = pytest.importorskip("playwright.sync_api", reason="the browser tests need Playwright for Python")
+
+REPO = Path(__file__).resolve().parents[1]
+DEMO = REPO / "demo_archive"
+SHOTS = REPO / "test-output" / "screenshots"
+ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+        "--disable-component-update", "--disable-sync"]
+QUERY = "rescans-2026/scan-0001.jpg"  # kept out of the test archive: it is the file a person brings along
+INDEXED_RESCANS = ("rescans-2026/scan-0002.jpg", "rescans-2026/scan-0003.jpg", "rescans-2026/scan-0004.jpg")
+OTHERS_PER_SEASON = 6
+
+
+def _key() -> dict[str, dict]:
+    with open(DEMO / "key.csv", newline="") as f:
+        return {row["path"]: row for row in csv.DictReader(f)}
+
+
+@pytest.fixture(scope="session")
+def demo_subset(tmp_path_factory):
+    """About 35 demo files: the originals of scan-0001..0006, three of those re-scans, and other swatches."""
+    key = _key()
+    wanted = {key[f"rescans-2026/scan-000{i}.jpg"]["source"] for i in range(1, 7)}
+    wanted |= set(INDEXED_RESCANS)
+    for season in ("2024-spring", "2024-autumn", "2025-spring", "2025-autumn"):
+        names = sorted(p for p, row in key.items() if p.startswith(season + "/") and row["kind"] == "original")
+        wanted |= set(names[:OTHERS_PER_SEASON])
+    root = tmp_path_factory.mktemp("browser") / "swatches"
+    for rel in sorted(wanted):
+        target = root / rel
+        target.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy2(DEMO / rel, target)
+    return root, key
+
+
+@pytest.fixture(scope="session")
+def server(demo_subset, tmp_path_factory):
+    """`kinscope serve` on a free 127.0.0.1 port over a freshly indexed archive; stopped at the end."""
+    from index.api import Archive
+    from web.serve import free_port
+
+    root, _ = demo_subset
+    db = tmp_path_factory.mktemp("browser-db") / "db"
+    with Archive.open(db, create=True) as archive:
+        archive.add([root], progress=False)
+    port = free_port("127.0.0.1")
+    log = open(db / "serve.log", "w")
+    proc = subprocess.Popen([sys.executable, "-m", "index", "serve", "--db", str(db), "--host", "127.0.0.1",
+                             "--port", str(port)], stdout=log, stderr=subprocess.STDOUT, cwd=REPO)
+    base = f"http://127.0.0.1:{port}"
+    try:
+        for _ in range(600):  # the server imports torch and opens the archive first
+            if proc.poll() is not None:
+                raise RuntimeError(f"kinscope serve exited: {(db / 'serve.log').read_text()}")
+            try:
+                with urllib.request.urlopen(base + "/api/info", timeout=2) as r:
+                    if r.status == 200:
+                        break
+            except (urllib.error.URLError, ConnectionError, OSError):
+                time.sleep(0.2)
+        else:
+            raise RuntimeError("kinscope serve did not answer")
+        yield base
+    finally:
+        proc.terminate()
+        try:
+            proc.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        log.close()
+
+
+@pytest.fixture(scope="module")
+def browser():
+    with sync_api.sync_playwright() as p:
+        b = p.chromium.launch(executable_path=str(CHROMIUM), args=ARGS)
+        yield b
+        b.close()
+
+
+@pytest.fixture
+def page(browser, server):
+    """A fresh page; fails the test on any script error or any request that leaves the page's own server."""
+    context = browser.new_context(viewport={"width": 1400, "height": 1000})
+    pg = context.new_page()
+    problems: list[str] = []
+    pg.on("pageerror", lambda exc: problems.append(f"script error: {exc}"))
+    pg.on("request", lambda r: r.url.startswith((server + "/", "data:", "blob:")) or problems.append(f"request off the server: {r.url}"))
+    pg.on("console", lambda m: m.type == "error" and "status of 4" not in m.text and problems.append(f"console: {m.text}"))
+    pg.base = server
+    yield pg
+    context.close()
+    assert not problems, problems
+
+
+def _open(page):
+    page.goto(page.base + "/")
+    page.wait_for_selector("#app[data-ready=true]")
+
+
+def _upload(page, rel=QUERY):
+    page.set_input_files("#file-input", str(DEMO / rel))
+    page.wait_for_selector("#results li.result")
+
+
+def _shot(page, name, locator=None):
+    SHOTS.mkdir(parents=True, exist_ok=True)
+    (locator or page).screenshot(path=str(SHOTS / name))
+    assert (SHOTS / name).stat().st_size > 5000
+
+
+def test_page_shows_the_cautions_and_labels_every_control(page):
+    _open(page)
+    text = page.inner_text("body")
+    assert "not a verdict" in text
+    assert "never deletes, moves or changes a file" in text
+    assert "loopback" in text
+    unlabelled = page.evaluate("""() => Array.from(document.querySelectorAll('input, select, button'))
+        .filter(e => !(e.labels && e.labels.length) && !e.getAttribute('aria-label') && !e.textContent.trim())
+        .map(e => e.id || e.name || e.outerHTML)""")
+    assert unlabelled == []
+    # The layer chooser offers every layer with its plain-language hint.
+    hints = page.locator(".layer-option").all_inner_texts()
+    assert len(hints) == 4 and any("colour" in h.lower() for h in hints) and any("objects" in h.lower() for h in hints)
+    assert page.locator('input[name="layer"]:checked').get_attribute("value") == "parts"
+
+
+def test_upload_shows_results_with_the_original_first(page, demo_subset):
+    _, key = demo_subset
+    _open(page)
+    _upload(page)
+    expected = Path(key[QUERY]["source"]).name
+    first = page.locator("#results li.result").first
+    assert first.locator(".result-name").inner_text() == expected
+    assert float(first.locator(".score").inner_text()) > 0.9
+    assert "2024-spring" in first.inner_text()  # the folder, relative to the archive's root
+    assert first.locator("img").get_attribute("loading") == "lazy"
+    assert first.locator("img").get_attribute("alt") == f"Thumbnail of {expected}"
+    assert "best first" in page.inner_text("#status")
+    assert page.locator("#query-image").get_attribute("src").startswith("/media/uploads/")
+    _shot(page, "results.png")
+
+
+def test_explanation_opens_with_heat_maps_pairs_and_channels(page):
+    _open(page)
+    _upload(page)
+    card = page.locator("#results li.result .result-main").first
+    card.focus()
+    page.keyboard.press("Enter")  # keyboard: Enter on a result opens its explanation
+    page.wait_for_selector("#channel-list li.channel")
+    dialog = page.locator("#explain-dialog")
+    assert dialog.evaluate("d => d.open")
+    assert "not a verdict" in dialog.inner_text()
+    score = float(dialog.locator(".big-score").inner_text())
+    assert score == pytest.approx(float(page.locator("#results li.result .score").first.inner_text()), abs=2e-3)
+    for who in ("query", "match"):
+        canvas = dialog.locator(f"canvas.heat-{who}")
+        assert "add up to the score" in canvas.get_attribute("aria-label")
+        # The canvas has been drawn on: some pixel is not transparent.
+        drawn = canvas.evaluate("c => c.width > 0 && c.getContext('2d').getImageData(0, 0, c.width, c.height).data.some((v, i) => i % 4 === 3 && v > 0)")
+        assert drawn, f"nothing drawn over the {who}"
+    pairs = dialog.locator("#pair-list li")
+    assert pairs.count() >= 3 and "of the score" in pairs.first.inner_text()
+    channels = dialog.locator("#channel-list li.channel")
+    assert channels.count() >= 3 and "Detector" in channels.first.inner_text()
+    patch = channels.first.locator(".exemplars img").first
+    patch.scroll_into_view_if_needed()
+    assert patch.evaluate("img => img.complete ? img.naturalWidth : new Promise(r => img.onload = () => r(img.naturalWidth))") > 0
+    _shot(page, "explanation.png", dialog)
+    # The heat maps can be switched off, and the legend goes with them.
+    page.click("label[for=toggle-heat]")
+    assert page.locator("#heat-legend").is_hidden()
+    page.keyboard.press("Escape")
+    assert not dialog.evaluate("d => d.open")
+    assert page.evaluate("document.activeElement.classList.contains('result-main')")  # focus goes back
+
+
+def test_drawing_a_region_reruns_the_search_with_that_box(page):
+    _open(page)
+    _upload(page)
+    canvas = page.locator("#region-canvas")
+    box = canvas.bounding_box()
+    with page.expect_response(lambda r: "/api/search" in r.url and "box=" in r.url) as response:
+        page.mouse.move(box["x"] + 0.1 * box["width"], box["y"] + 0.15 * box["height"])
+        page.mouse.down()
+        page.mouse.move(box["x"] + 0.55 * box["width"], box["y"] + 0.6 * box["height"], steps=6)
+        page.mouse.up()
+    assert response.value.status == 200
+    page.wait_for_selector('#results:not([data-box=""])', state="attached")
+    x0, y0, x1, y1 = map(float, page.get_attribute("#results", "data-box").split(","))
+    assert x0 == pytest.approx(0.1, abs=0.02) and y1 == pytest.approx(0.6, abs=0.02)
+    assert "marked region" in page.inner_text("#region-state")
+    assert page.locator("#results li.result").count() > 0
+    _shot(page, "region.png")
+    # The explanation of a region search marks the region on the query.
+    page.locator("#results li.result .result-main").first.click()
+    page.wait_for_selector("#channel-list li.channel")
+    assert "marked region" in page.inner_text("#explain-dialog .explain-summary")
+    page.keyboard.press("Escape")
+    # And the region can be removed again.
+    with page.expect_response(lambda r: "/api/search" in r.url and "box=" not in r.url):
+        page.click("#region-clear")
+    page.wait_for_selector('#results[data-box=""]', state="attached")
+    assert "whole image" in page.inner_text("#region-state")
+
+
+def test_layer_chooser_reruns_without_reloading(page):
+    _open(page)
+    _upload(page)
+    page.evaluate("window.__marker = 'same page'")
+    with page.expect_response(lambda r: "/api/search" in r.url and "layer=texture" in r.url):
+        page.check('input[name="layer"][value="texture"]')
+    page.wait_for_selector('#results[data-layer="texture"]', state="attached")
+    assert "Texture" in page.inner_text("#status")
+    assert page.evaluate("window.__marker") == "same page"  # no page reload
+
+
+def test_a_non_image_upload_shows_a_plain_message(page):
+    _open(page)
+    page.set_input_files("#file-input", files=[{"name": "notes.jpg", "mimeType": "image/jpeg",
+                                                "buffer": b"these are meeting notes, not a picture"}])
+    error = page.locator("#query-error")
+    error.wait_for(state="visible")
+    assert "cannot be used as a query" in error.inner_text()
+    assert "Traceback" not in page.content()
+    assert page.locator("#results li").count() == 0
+
+
+def test_archive_item_as_query_and_the_item_page(page, demo_subset):
+    _, key = demo_subset
+    _open(page)
+    page.click("#browse-button")
+    page.wait_for_selector("#browser-grid li button")
+    assert "of 3" in page.inner_text("#browser-status")  # "Showing N of 3x items"
+    original = Path(key["rescans-2026/scan-0002.jpg"]["source"]).name
+    page.click(f'#browser-grid button[aria-label^="Search with {original}"]')
+    page.wait_for_selector("#results li.result")
+    assert "item=" in page.url
+    names = page.locator("#results .result-name").all_inner_texts()
+    assert names[0] == "scan-0002.jpg"  # its re-scan comes first
+    # The item page: full image, path, metadata, its own neighbours.
+    page.locator("#results li.result .result-actions a").first.click()
+    page.wait_for_selector("#results li.result")
+    assert page.locator(".item-figure img").evaluate("img => img.complete && img.naturalWidth > 0")
+    table = page.inner_text(".meta-table")
+    assert "scan-0002.jpg" in table and "SHA-256" in table and "rescans-2026" in table
+    assert page.locator("#results .result-name").first.inner_text() == original
+    _shot(page, "item.png")
+    # "Why it matched" on the item page opens the search page with that explanation.
+    page.locator("#results li.result .result-main").first.click()
+    page.wait_for_selector("#channel-list li.channel")
+    assert page.inner_text("#explain-title") == f"Why {original} matched"
+    assert page.inner_text("#query-label") == "scan-0002.jpg"
+
+
+def test_folder_and_date_filters(page):
+    _open(page)
+    _upload(page)
+    option = page.locator("#folder-filter option", has_text="2024-autumn")
+    with page.expect_response(lambda r: "/api/search" in r.url and "folder=" in r.url):
+        page.select_option("#folder-filter", option.get_attribute("value"))
+    page.wait_for_selector("#status:has-text('in 2024-autumn')")
+    folders = set(page.locator("#results .result-folder").all_inner_texts())
+    assert folders == {"2024-autumn"}
+    with page.expect_response(lambda r: "/api/search" in r.url and "date_from=2090-01-01" in r.url):
+        page.fill("#date-from", "2090-01-01")
+    page.wait_for_selector("#status:has-text('No item passes these filters')")
+    assert page.locator("#results li").count() == 0
+    page.click("#filter-clear")
+    page.wait_for_selector("#status:has-text('best first')")
+    assert len(set(page.locator("#results .result-folder").all_inner_texts())) > 1
+
+
+@pytest.mark.parametrize("how", ["paste", "drop"])
+def test_paste_and_drop_give_a_query(page, demo_subset, how):
+    _, key = demo_subset
+    _open(page)
+    data = list((DEMO / QUERY).read_bytes())
+    page.evaluate("""([how, bytes]) => {
+        const file = new File([new Uint8Array(bytes)], 'scan.jpg', {type: 'image/jpeg'});
+        const dt = new DataTransfer();
+        dt.items.add(file);
+        if (how === 'paste') {
+            document.dispatchEvent(new ClipboardEvent('paste', {clipboardData: dt, bubbles: true}));
+        } else {
+            const target = document.getElementById('dropzone');
+            for (const type of ['dragenter', 'dragover', 'drop']) {
+                target.dispatchEvent(new DragEvent(type, {dataTransfer: dt, bubbles: true, cancelable: true}));
+            }
+        }
+    }""", [how, data])
+    page.wait_for_selector("#results li.result")
+    assert page.locator("#results .result-name").first.inner_text() == Path(key[QUERY]["source"]).name
+    assert page.inner_text("#query-label") == ("Pasted image" if how == "paste" else "scan.jpg")
+    assert page.locator("#drop-overlay").is_hidden()

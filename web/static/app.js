@@ -1,0 +1,514 @@
+// The search page: give a query (file, drop, paste, archive item), choose a layer, filter, draw a
+// region, page through results, and open "why it matched" for any of them. Talks to /api only.
+import { ApiError, api, el, query, resultCard, setRoot, shortFolder, showMessage } from "./common.js";
+import { clearExplanation, renderExplanation } from "./explain.js";
+
+const PAGE = 24;
+const BROWSER_PAGE = 60;
+const MIN_REGION = 0.04; // a region narrower than this (fraction of the image) is taken as a stray click
+
+const $ = (id) => document.getElementById(id);
+const app = $("app");
+
+const state = {
+  query: null, // {kind: "upload", upload, image, label} | {kind: "item", item, image, label}
+  box: null, // [x0, y0, x1, y1] fractions of the query image
+  layer: app.dataset.defaultLayer,
+  defaultLayer: app.dataset.defaultLayer,
+  results: [],
+  more: false,
+  seq: 0,
+  layers: {}, // name -> {hint, channels}
+  explainCache: new Map(),
+};
+
+// --- elements -------------------------------------------------------------------------------
+const fileInput = $("file-input");
+const dropzone = $("dropzone");
+const dropOverlay = $("drop-overlay");
+const queryError = $("query-error");
+const queryView = $("query-view");
+const queryImage = $("query-image");
+const queryLabel = $("query-label");
+const regionCanvas = $("region-canvas");
+const regionState = $("region-state");
+const regionClear = $("region-clear");
+const regionForm = $("region-form");
+const filterForm = $("filter-form");
+const folderFilter = $("folder-filter");
+const dateFrom = $("date-from");
+const dateTo = $("date-to");
+const statusLine = $("status");
+const searchError = $("search-error");
+const start = $("start");
+const resultsList = $("results");
+const moreButton = $("more-button");
+const explainDialog = $("explain-dialog");
+const explainTitle = $("explain-title");
+const explainBody = $("explain-body");
+const browserDialog = $("browser-dialog");
+const browserFolder = $("browser-folder");
+const browserGrid = $("browser-grid");
+const browserStatus = $("browser-status");
+const browserError = $("browser-error");
+const browserMore = $("browser-more");
+
+// --- query ----------------------------------------------------------------------------------
+function queryParams() {
+  if (!state.query) return {};
+  return state.query.kind === "upload" ? { upload: state.query.upload } : { item: state.query.item };
+}
+
+function layerText(name) {
+  const hint = state.layers[name] && state.layers[name].hint;
+  const label = name.charAt(0).toUpperCase() + name.slice(1);
+  return hint ? `${label} (${hint})` : label;
+}
+
+function setQuery(q) {
+  state.query = q;
+  state.box = null;
+  state.explainCache.clear();
+  showMessage(queryError, "");
+  queryView.hidden = false;
+  dropzone.classList.add("is-compact");
+  start.hidden = true;
+  queryImage.alt = `The query image: ${q.label}`;
+  queryLabel.textContent = q.label;
+  queryImage.src = q.image;
+  updateRegionUI();
+  updateURL();
+  runSearch();
+}
+
+async function uploadFile(file, how) {
+  if (!file) return;
+  showMessage(queryError, "");
+  statusLine.textContent = "Reading the image…";
+  const form = new FormData();
+  const name = file.name || "pasted image";
+  form.append("file", file, name);
+  try {
+    const r = await api("/api/queries", null, { method: "POST", body: form });
+    setQuery({ kind: "upload", upload: r.upload, image: r.image, label: how === "paste" ? "Pasted image" : name });
+  } catch (err) {
+    statusLine.textContent = "";
+    showMessage(queryError, err instanceof ApiError ? err.message : "the image could not be sent to the server");
+  }
+}
+
+function useItem(item) {
+  if (explainDialog.open) explainDialog.close();
+  if (browserDialog.open) browserDialog.close();
+  setQuery({ kind: "item", item: item.id, image: `/media/items/${item.id}/image`, label: item.name, path: item.path });
+  queryView.scrollIntoView({ block: "nearest" });
+}
+
+fileInput.addEventListener("change", () => {
+  uploadFile(fileInput.files[0], "file");
+  fileInput.value = "";
+});
+
+// Drag and drop anywhere on the page.
+let dragDepth = 0;
+const hasFiles = (e) => e.dataTransfer && Array.from(e.dataTransfer.types || []).includes("Files");
+document.addEventListener("dragenter", (e) => {
+  if (!hasFiles(e) || explainDialog.open || browserDialog.open) return;
+  e.preventDefault();
+  dragDepth += 1;
+  dropOverlay.hidden = false;
+  document.body.classList.add("is-dragging");
+});
+document.addEventListener("dragover", (e) => {
+  if (!hasFiles(e)) return;
+  e.preventDefault();
+  e.dataTransfer.dropEffect = "copy";
+});
+document.addEventListener("dragleave", (e) => {
+  if (!hasFiles(e)) return;
+  dragDepth = Math.max(0, dragDepth - 1);
+  if (dragDepth === 0) {
+    dropOverlay.hidden = true;
+    document.body.classList.remove("is-dragging");
+  }
+});
+document.addEventListener("drop", (e) => {
+  if (!hasFiles(e)) return;
+  e.preventDefault();
+  dragDepth = 0;
+  dropOverlay.hidden = true;
+  document.body.classList.remove("is-dragging");
+  const file = e.dataTransfer.files[0];
+  if (file) uploadFile(file, "drop");
+});
+
+// Paste an image from the clipboard.
+document.addEventListener("paste", (e) => {
+  if (explainDialog.open || browserDialog.open) return;
+  const items = Array.from((e.clipboardData && e.clipboardData.items) || []);
+  const image = items.find((i) => i.kind === "file" && i.type.startsWith("image/"));
+  const inField = e.target instanceof HTMLInputElement || e.target instanceof HTMLTextAreaElement;
+  if (image) {
+    e.preventDefault();
+    uploadFile(image.getAsFile(), "paste");
+  } else if (!inField) {
+    showMessage(queryError, "the clipboard holds no image. Copy an image (not its file name) and paste again.");
+  }
+});
+
+// --- region box -----------------------------------------------------------------------------
+let drag = null;
+
+function fraction(e) {
+  const rect = regionCanvas.getBoundingClientRect();
+  return [
+    Math.max(0, Math.min(1, (e.clientX - rect.left) / rect.width)),
+    Math.max(0, Math.min(1, (e.clientY - rect.top) / rect.height)),
+  ];
+}
+
+function ordered(a, b) {
+  return [Math.min(a[0], b[0]), Math.min(a[1], b[1]), Math.max(a[0], b[0]), Math.max(a[1], b[1])];
+}
+
+function drawRegion(box, live = false) {
+  const w = queryImage.clientWidth;
+  const h = queryImage.clientHeight;
+  const dpr = window.devicePixelRatio || 1;
+  regionCanvas.width = Math.round(w * dpr);
+  regionCanvas.height = Math.round(h * dpr);
+  const ctx = regionCanvas.getContext("2d");
+  ctx.clearRect(0, 0, regionCanvas.width, regionCanvas.height);
+  if (!box) return;
+  const W = regionCanvas.width;
+  const H = regionCanvas.height;
+  const [x0, y0, x1, y1] = box;
+  ctx.fillStyle = "rgba(245, 243, 238, 0.7)";
+  ctx.fillRect(0, 0, W, H);
+  ctx.clearRect(x0 * W, y0 * H, (x1 - x0) * W, (y1 - y0) * H);
+  ctx.lineWidth = 4 * dpr;
+  ctx.strokeStyle = "rgba(255, 255, 255, 0.9)";
+  ctx.strokeRect(x0 * W, y0 * H, (x1 - x0) * W, (y1 - y0) * H);
+  ctx.lineWidth = 2 * dpr;
+  ctx.strokeStyle = live ? "#b4530b" : "#285e54";
+  ctx.setLineDash(live ? [6 * dpr, 4 * dpr] : []);
+  ctx.strokeRect(x0 * W, y0 * H, (x1 - x0) * W, (y1 - y0) * H);
+  ctx.setLineDash([]);
+}
+
+function updateRegionUI() {
+  drawRegion(state.box);
+  regionClear.hidden = !state.box;
+  regionCanvas.dataset.box = state.box ? state.box.map((v) => v.toFixed(3)).join(",") : "";
+  if (state.box) {
+    const [x0, y0, x1, y1] = state.box;
+    regionState.textContent = `Searching by the marked region only (${Math.round((x1 - x0) * 100)}% × ${Math.round((y1 - y0) * 100)}% of the image).`;
+    const f = regionForm.elements;
+    f.x0.value = Math.round(x0 * 100);
+    f.y0.value = Math.round(y0 * 100);
+    f.x1.value = Math.round(x1 * 100);
+    f.y1.value = Math.round(y1 * 100);
+  } else {
+    regionState.textContent = "Searching by the whole image.";
+  }
+}
+
+function setBox(box) {
+  showMessage(queryError, "");
+  state.box = box;
+  state.explainCache.clear();
+  updateRegionUI();
+  updateURL();
+  runSearch();
+}
+
+regionCanvas.addEventListener("pointerdown", (e) => {
+  if (!state.query || e.button !== 0) return;
+  e.preventDefault();
+  regionCanvas.setPointerCapture(e.pointerId);
+  const p = fraction(e);
+  drag = { from: p, to: p };
+});
+regionCanvas.addEventListener("pointermove", (e) => {
+  if (!drag) return;
+  drag.to = fraction(e);
+  drawRegion(ordered(drag.from, drag.to), true);
+});
+const endDrag = (e) => {
+  if (!drag) return;
+  drag.to = fraction(e);
+  const box = ordered(drag.from, drag.to);
+  drag = null;
+  if (box[2] - box[0] < MIN_REGION || box[3] - box[1] < MIN_REGION) {
+    updateRegionUI(); // too small to mean anything: keep what was there
+    return;
+  }
+  setBox(box);
+};
+regionCanvas.addEventListener("pointerup", endDrag);
+regionCanvas.addEventListener("pointercancel", () => {
+  drag = null;
+  updateRegionUI();
+});
+new ResizeObserver(() => drawRegion(state.box)).observe(queryImage);
+queryImage.addEventListener("load", () => drawRegion(state.box));
+queryImage.addEventListener("error", () => {
+  if (state.query) showMessage(queryError, "the query image cannot be shown; upload it again.");
+});
+
+regionClear.addEventListener("click", () => setBox(null));
+regionForm.addEventListener("submit", (e) => {
+  e.preventDefault();
+  const f = regionForm.elements;
+  const v = ["x0", "y0", "x1", "y1"].map((k) => Number(f[k].value) / 100);
+  if (v.some((x) => !Number.isFinite(x) || x < 0 || x > 1) || v[0] >= v[2] || v[1] >= v[3]) {
+    showMessage(queryError, "the region needs left < right and top < bottom, each between 0 and 100.");
+    return;
+  }
+  showMessage(queryError, "");
+  setBox(v[0] === 0 && v[1] === 0 && v[2] === 1 && v[3] === 1 ? null : v);
+});
+
+// --- layer and filters ----------------------------------------------------------------------
+document.querySelectorAll('input[name="layer"]').forEach((radio) => {
+  radio.addEventListener("change", () => {
+    if (!radio.checked) return;
+    state.layer = radio.value;
+    state.explainCache.clear();
+    updateURL();
+    if (state.query) runSearch();
+  });
+});
+
+folderFilter.addEventListener("change", () => state.query && runSearch());
+dateFrom.addEventListener("change", () => state.query && runSearch());
+dateTo.addEventListener("change", () => state.query && runSearch());
+filterForm.addEventListener("submit", (e) => e.preventDefault());
+filterForm.addEventListener("reset", () => setTimeout(() => state.query && runSearch(), 0));
+
+function filters() {
+  return { folder: folderFilter.value, date_from: dateFrom.value, date_to: dateTo.value };
+}
+
+// --- searching ------------------------------------------------------------------------------
+async function runSearch({ append = false } = {}) {
+  if (!state.query) return;
+  const f = filters();
+  if (f.date_from && f.date_to && f.date_from > f.date_to) {
+    showMessage(searchError, "the start date is after the end date.");
+    return;
+  }
+  const seq = ++state.seq;
+  const offset = append ? state.results.length : 0;
+  showMessage(searchError, "");
+  resultsList.setAttribute("aria-busy", "true");
+  moreButton.disabled = true;
+  statusLine.textContent = append ? "Loading more results…" : "Searching…";
+  try {
+    const r = await api("/api/search", { ...queryParams(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
+    if (seq !== state.seq) return; // a newer search has started
+    if (!append) {
+      state.results = [];
+      resultsList.replaceChildren();
+    }
+    const first = state.results.length;
+    state.results.push(...r.results);
+    state.more = r.more;
+    resultsList.dataset.layer = r.layer;
+    resultsList.dataset.box = r.query.box ? r.query.box.map((v) => v.toFixed(3)).join(",") : "";
+    r.results.forEach((res, i) => resultsList.append(resultCard(res, first + i + 1, { onExplain: openExplanation, onUse: useItem })));
+    moreButton.hidden = !r.more;
+    describeResults();
+  } catch (err) {
+    if (seq !== state.seq) return;
+    statusLine.textContent = "";
+    if (!append) {
+      state.results = [];
+      resultsList.replaceChildren();
+      moreButton.hidden = true;
+    }
+    showMessage(searchError, err.message);
+  } finally {
+    if (seq === state.seq) {
+      resultsList.removeAttribute("aria-busy");
+      moreButton.disabled = false;
+    }
+  }
+}
+
+function describeResults() {
+  const n = state.results.length;
+  const f = filters();
+  const parts = [];
+  if (n === 0) {
+    statusLine.textContent = f.folder || f.date_from || f.date_to
+      ? "No item passes these filters. Widen the folder or the dates."
+      : "No results.";
+    return;
+  }
+  parts.push(`${n} ${n === 1 ? "item" : "items"} most like the query, best first, compared by ${layerText(state.layer)}`);
+  if (state.box) parts.push("using the marked region");
+  if (f.folder) parts.push(`in ${shortFolder(f.folder)}`);
+  if (f.date_from || f.date_to) parts.push(`dated ${f.date_from || "…"} to ${f.date_to || "…"}`);
+  let text = parts.join(", ") + ".";
+  if (state.more) text += " More below.";
+  statusLine.textContent = text;
+}
+
+moreButton.addEventListener("click", () => runSearch({ append: true }));
+
+// --- URL: an item query, its layer and region can be bookmarked -----------------------------
+function updateURL() {
+  const params = {};
+  if (state.query && state.query.kind === "item") {
+    params.item = state.query.item;
+    if (state.box) params.box = state.box;
+  }
+  if (state.layer !== state.defaultLayer) params.layer = state.layer;
+  const qs = query(params);
+  history.replaceState(null, "", qs ? `?${qs}` : window.location.pathname);
+}
+
+// --- explanation ----------------------------------------------------------------------------
+let explainOpener = null;
+
+async function openExplanation(result) {
+  explainOpener = document.activeElement;
+  explainTitle.textContent = `Why ${result.name} matched`;
+  clearExplanation(explainBody);
+  explainBody.append(el("p", { class: "loading", role: "status", text: "Working out where the similarity comes from…" }));
+  if (!explainDialog.open) explainDialog.showModal();
+  const params = { ...queryParams(), match: result.id, layer: state.layer, box: state.box };
+  const key = query(params);
+  try {
+    let data = state.explainCache.get(key);
+    if (!data) {
+      data = await api("/api/explain", params);
+      state.explainCache.set(key, data);
+    }
+    if (!explainDialog.open) return;
+    const layer = state.layers[data.layer] || {};
+    renderExplanation(explainBody, data, {
+      queryImage: state.query.image,
+      queryLabel: state.query.label,
+      box: state.box,
+      layer: data.layer,
+      layerHint: layer.hint,
+      channels: layer.channels,
+      onUse: useItem,
+    });
+  } catch (err) {
+    clearExplanation(explainBody);
+    explainBody.append(el("p", { class: "message message-error", role: "alert", text: err.message }));
+  }
+}
+
+explainDialog.addEventListener("close", () => {
+  clearExplanation(explainBody);
+  if (explainOpener && document.contains(explainOpener)) explainOpener.focus();
+  explainOpener = null;
+});
+
+for (const dialog of [explainDialog, browserDialog]) {
+  dialog.querySelectorAll("[data-close]").forEach((b) => b.addEventListener("click", () => dialog.close()));
+  // A click on the dimmed backdrop (outside the box) closes it too.
+  dialog.addEventListener("click", (e) => {
+    if (e.target !== dialog) return;
+    const r = dialog.getBoundingClientRect();
+    if (e.clientX < r.left || e.clientX > r.right || e.clientY < r.top || e.clientY > r.bottom) dialog.close();
+  });
+}
+
+// --- archive browser ------------------------------------------------------------------------
+const browser = { offset: 0, total: 0, loaded: false, seq: 0 };
+
+async function loadBrowserPage(reset) {
+  const seq = ++browser.seq;
+  if (reset) {
+    browser.offset = 0;
+    browserGrid.replaceChildren();
+  }
+  showMessage(browserError, "");
+  browserStatus.textContent = "Loading…";
+  try {
+    const page = await api("/api/items", { offset: browser.offset, limit: BROWSER_PAGE, folder: browserFolder.value });
+    if (seq !== browser.seq) return;
+    browser.total = page.total;
+    browser.offset += page.items.length;
+    for (const item of page.items) {
+      const img = el("img", { src: `${item.thumbnail}?size=128`, alt: "", loading: "lazy", decoding: "async", width: 128, height: 128 });
+      const button = el(
+        "button",
+        { type: "button", class: "browser-item", title: item.path, "aria-label": `Search with ${item.name} (${shortFolder(item.folder)})` },
+        el("span", { class: "thumb" }, img),
+        el("span", { class: "browser-name", text: item.name }),
+      );
+      button.addEventListener("click", () => useItem(item));
+      browserGrid.append(el("li", {}, button));
+    }
+    browser.loaded = true;
+    browserStatus.textContent = browser.total
+      ? `Showing ${browser.offset.toLocaleString()} of ${browser.total.toLocaleString()} items. Select one to search with it.`
+      : "No items in this folder.";
+    browserMore.hidden = browser.offset >= browser.total;
+  } catch (err) {
+    browserStatus.textContent = "";
+    showMessage(browserError, err.message);
+  }
+}
+
+function openBrowser() {
+  browserDialog.showModal();
+  if (!browser.loaded) loadBrowserPage(true);
+}
+
+$("browse-button").addEventListener("click", openBrowser);
+$("start-browse").addEventListener("click", openBrowser);
+browserFolder.addEventListener("change", () => loadBrowserPage(true));
+browserMore.addEventListener("click", () => loadBrowserPage(false));
+
+// --- start-up -------------------------------------------------------------------------------
+async function startUp() {
+  try {
+    const [info, folders] = await Promise.all([api("/api/info"), api("/api/folders")]);
+    for (const l of info.layers) state.layers[l.name] = { hint: l.hint, channels: l.channels };
+    setRoot(folders.folders);
+    for (const select of [folderFilter, browserFolder]) {
+      for (const f of folders.folders) {
+        select.append(el("option", { value: f.folder, text: `${shortFolder(f.folder)} (${f.count.toLocaleString()})` }));
+      }
+    }
+  } catch (err) {
+    showMessage(searchError, err.message);
+  }
+
+  // A bookmarked search: ?item=ID&layer=NAME&box=x0,y0,x1,y1&explain=ID
+  const params = new URLSearchParams(window.location.search);
+  const layer = params.get("layer");
+  if (layer) {
+    const radio = document.querySelector(`input[name="layer"][value="${CSS.escape(layer)}"]`);
+    if (radio) {
+      radio.checked = true;
+      state.layer = layer;
+    }
+  }
+  const itemId = params.get("item");
+  if (itemId && /^\d+$/.test(itemId)) {
+    try {
+      const item = await api(`/api/items/${itemId}`);
+      setQuery({ kind: "item", item: item.id, image: item.image, label: item.name, path: item.path });
+      const box = (params.get("box") || "").split(",").map(Number);
+      if (box.length === 4 && box.every(Number.isFinite) && box[0] < box[2] && box[1] < box[3]) setBox(box);
+      const explain = params.get("explain");
+      if (explain && /^\d+$/.test(explain)) {
+        const match = await api(`/api/items/${explain}`);
+        openExplanation(match);
+      }
+    } catch (err) {
+      showMessage(queryError, err.message);
+    }
+  }
+  app.dataset.ready = "true";
+}
+
+startUp();
