@@ -210,3 +210,25 @@ def test_the_archive_folder_is_never_written_to(tmp_path):
     archive.thumbnail(1)
     archive.check()
     assert snapshot() == before
+
+
+def test_searching_while_an_indexer_runs_sees_the_last_committed_state(tmp_path):
+    imgs = _folder(tmp_path / "imgs", 60, seed=9)
+    db = tmp_path / "db"
+    Archive.open(db, create=True, layers=["colour", "objects"]).add([imgs / "img-000.png"], progress=False)
+    proc = subprocess.Popen(_index_cmd(imgs, db), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    seen, searches = [], 0
+    reader = Archive.open(db)
+    while proc.poll() is None and searches < 400:
+        reader.refresh()
+        committed = set(reader.catalog.ids_with_status("ok"))
+        result = reader.search(str(imgs / "img-000.png"), layer="colour", k=100)["results"]
+        ids = {r["id"] for r in result}
+        assert ids <= committed | set(reader.catalog.ids_with_status("ok"))  # never an uncommitted item
+        seen.append(len(ids))
+        searches += 1
+        time.sleep(0.05)
+    assert proc.wait(timeout=300) == 0
+    assert seen and seen == sorted(seen)  # the visible archive only grows while the run goes on
+    reader.refresh()
+    assert len(reader.search(str(imgs / "img-000.png"), layer="colour", k=100)["results"]) == 60
