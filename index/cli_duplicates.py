@@ -1,0 +1,135 @@
+"""`kinscope duplicates` and `kinscope restore`: thin wrappers over Archive.duplicates and index.quarantine."""
+from __future__ import annotations
+
+import csv
+import io
+import json
+import sys
+
+import click
+
+from .api import Archive, ArchiveError
+from .quarantine import QuarantineError, indexed_roots, move, restore
+
+DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
+CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
+               "size", "mtime", "sha256", "exact_group")
+
+
+def _fail(message) -> None:
+    click.echo(f"kinscope: {message}", err=True)
+    sys.exit(2)
+
+
+def to_csv(doc: dict) -> str:
+    """One row per member, with its group id; `keeper` is 1 for the suggested keeper."""
+    buf = io.StringIO()
+    writer = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\n")
+    writer.writeheader()
+    for g in doc["groups"]:
+        for m in g["members"]:
+            is_keeper = m["id"] == g["keeper"]
+            writer.writerow({**{k: m.get(k) for k in CSV_COLUMNS if k in m}, "group": g["id"], "kind": g["kind"],
+                             "keeper": int(is_keeper), "kept_because": g["keeper_reason"] if is_keeper else ""})
+    return buf.getvalue()
+
+
+def _summary(doc: dict) -> str:
+    c = doc["counts"]
+    return (f"{c['groups']} groups ({c['exact']} exact, {c['near']} near) holding {c['images_in_groups']} of "
+            f"{c['images']} images; layer {doc['layer']}, {doc['score']} score >= {doc['threshold']:g}. "
+            f"Suggested keeper: {doc['rules']['keeper']}.")
+
+
+def _print_moves(report: dict, err: bool) -> None:
+    files = report["files"]
+    if not files:
+        click.echo("Nothing to move: no group has a non-keeper.", err=err)
+        return
+    verb = {"planned": "would move", "moved": "moved", "skipped": "skipped"}
+    for f in files:
+        line = f"{verb[f['status']]:<10} {f['original']} -> {f['quarantined']}"
+        click.echo(line + (f"  ({f['reason']})" if f["reason"] else ""), err=err)
+    if report["apply"]:
+        moved = sum(f["status"] == "moved" for f in files)
+        click.echo(f"{moved} of {len(files)} files moved; manifest: {report['manifest']}", err=err)
+        click.echo(f"Undo with: kinscope restore {report['manifest']} --apply", err=err)
+    else:
+        click.echo(f"Dry run: nothing was moved ({len(files)} files planned). Add --apply to move them.", err=err)
+
+
+@click.command("duplicates")
+@click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
+@click.option("--layer", help="Layer to compare on (default: objects, the one the benchmark calibrated).")
+@click.option("--threshold", type=float, help="Score at or above which two items are near duplicates "
+              "(default: the calibrated value of the layer; see docs/duplicates.md).")
+@click.option("--cosine", "raw", is_flag=True, help="Threshold the raw cosine similarity instead of the score "
+              "normalised against the archive's background similarity.")
+@click.option("--format", "fmt", type=click.Choice(["json", "csv"]), default="json", show_default=True)
+@click.option("--output", type=click.Path(dir_okay=False), help="Write the groups to this file instead of stdout.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False),
+              help="Also write a static HTML page with thumbnails for review.")
+@click.option("--move-to", type=click.Path(file_okay=False),
+              help="Quarantine folder (outside every indexed folder) for the non-keepers; a dry run unless --apply.")
+@click.option("--apply", is_flag=True, help="With --move-to: really move the files and write the manifest.")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bar and no summary line.")
+def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, quiet):
+    """Find exact and near duplicate groups; print them as JSON or CSV. Never deletes anything."""
+    if apply and not move_to:
+        _fail("--apply only goes with --move-to DIR")
+    try:
+        with Archive.open(db) as archive:
+            doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet)
+            roots = indexed_roots(archive) if move_to else []
+    except ArchiveError as exc:
+        _fail(exc)
+    if report_path:  # before any move, so the thumbnails come from where the files are now
+        from .report import write
+
+        try:
+            write(doc, report_path)
+        except OSError as exc:
+            _fail(f"cannot write the report {report_path}: {exc.strerror or exc}")
+    on_stdout = output is None
+    if move_to:
+        try:
+            doc["quarantine"] = move(doc, move_to, roots, db=str(db), apply=apply)
+        except QuarantineError as exc:
+            _fail(exc)
+    text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else to_csv(doc)
+    if on_stdout:
+        click.echo(text, nl=False)
+    else:
+        try:
+            with open(output, "w", encoding="utf-8", newline="") as fh:
+                fh.write(text)
+        except OSError as exc:
+            _fail(f"cannot write {output}: {exc.strerror or exc}")
+    if move_to:
+        _print_moves(doc["quarantine"], err=on_stdout)
+    if not quiet:
+        click.echo(_summary(doc) + (f" Written to {output}." if output else "")
+                   + (f" Review page: {report_path}." if report_path else ""), err=on_stdout)
+
+
+@click.command("restore")
+@click.argument("manifest", type=click.Path(exists=True, dir_okay=False))
+@click.option("--apply", is_flag=True, help="Really move the files back (otherwise only print the plan).")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+def restore_cmd(manifest, apply, as_json):
+    """Put the files listed in a quarantine MANIFEST back where they were; never overwrites."""
+    try:
+        report = restore(manifest, apply=apply)
+    except QuarantineError as exc:
+        _fail(exc)
+    if as_json:
+        click.echo(json.dumps(report, indent=2))
+    else:
+        for f in report["files"]:
+            line = f"{f['status']:<16} {f['quarantined']} -> {f['original']}"
+            click.echo(line + (f"  ({f['reason']})" if f["reason"] else ""))
+        if not apply:
+            click.echo("Dry run: nothing was moved. Add --apply to restore.")
+    refused = sum(f["status"] == "refused" for f in report["files"])
+    if refused:
+        _fail(f"{refused} of {len(report['files'])} files could not be restored (reasons above)")
