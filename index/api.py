@@ -25,6 +25,7 @@ from .pooling import PCAWhitening
 from .scan import diff, normalize_roots, walk
 from .search import nearest, row_filter
 from .store import VectorStore
+from .vector_index import IndexPolicy
 
 DEFAULT_GEM_P = 3.0
 WRITE_ERRNOS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EPERM, errno.EDQUOT, errno.EFBIG}
@@ -182,14 +183,22 @@ class Archive:
             _threads()
             model = self.backbone.load()
             layers = [Layer(l["name"], l["node"], l["channels"], l["stride"]) for l in self.manifest["layers"]]
-            self._embedder = Embedder(self.backbone, model, layers, self.manifest["pooling"]["p"])
+            # Queries use ONNX Runtime only when its model is already cached (readers never write).
+            preference = self.manifest.get("runtime", {}).get("engine", "auto")
+            self._embedder = Embedder(self.backbone, model, layers, self.manifest["pooling"]["p"],
+                                      engine="torch" if preference == "torch" else "auto",
+                                      cache_dir=self.db / "engines", may_export=False)
         return self._embedder
 
     def store(self, layer: str) -> VectorStore:
         if layer not in self._stores:
             entry = self._layer(layer)
             path = self.db / entry["file"]
-            self._stores[layer] = VectorStore.load(path) if path.exists() else VectorStore(entry["dim"])
+            # Index type by size (index.vector_index); what was measured when it was built is in the manifest.
+            policy = IndexPolicy.from_dict(self.manifest.get("vector_index"))
+            measured = self.manifest.get("indexes", {}).get(layer)
+            self._stores[layer] = (VectorStore.load(path, policy=policy, measured=measured) if path.exists()
+                                   else VectorStore(entry["dim"], policy=policy))
         return self._stores[layer]
 
     def exemplars(self, layer: str) -> Exemplars:
@@ -212,18 +221,33 @@ class Archive:
         return self._whitening.get(layer)
 
     # --- indexing ---------------------------------------------------------------------------
-    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 16,
-            checkpoint_every: int = 512) -> dict:
-        """Index every image below these paths, incrementally; returns the run's counts."""
+    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 32,
+            checkpoint_every: int = 512, engine: str | None = None, workers: int | None = None,
+            file_timeout: float | None = None, cluster=None) -> dict:
+        """Index every image below these paths, incrementally; returns the run's counts.
+
+        cluster: a Dask client or scheduler address: workers read and embed, this process alone
+        writes the catalog and the stores (see index/cluster.py).
+
+        engine: "auto" (ONNX Runtime when its export pays off, else torch), "torch" or "onnx"; kept in
+        the manifest as a preference only (the descriptors of both are interchangeable). workers:
+        decode processes (default one per core); file_timeout: seconds before a file's decode is
+        abandoned and recorded as a failure (default no limit).
+        """
+        from .engines import ENGINES
+
+        if engine is not None and engine not in ENGINES:
+            raise ArchiveError(f"unknown engine {engine!r}; choose one of: {', '.join(ENGINES)}")
         try:
             roots = normalize_roots(paths)
         except FileNotFoundError as exc:
             raise ArchiveError(str(exc)) from None
         if not roots:
             raise ArchiveError("give at least one file or folder to index")
+        self._cluster = cluster
         with self._writer_lock():
             try:
-                return self._add(roots, progress, batch_size, checkpoint_every)
+                return self._add(roots, progress, batch_size, checkpoint_every, engine, workers, file_timeout)
             except (OSError, sqlite3.OperationalError) as exc:
                 # Full disk, read-only folder...: every file is replaced atomically, so what is on disk
                 # is the last checkpoint, whole.
@@ -235,7 +259,8 @@ class Archive:
                     "the archive is as of its last checkpoint. Free space or fix permissions, then run again."
                 ) from None
 
-    def _add(self, roots: list[str], progress: bool, batch_size: int, checkpoint_every: int = 512) -> dict:
+    def _add(self, roots: list[str], progress: bool, batch_size: int, checkpoint_every: int = 512,
+             engine: str | None = None, workers: int | None = None, file_timeout: float | None = None) -> dict:
         self.reconcile()
         run_id = self.catalog.start_run(roots)
         errors: list[dict] = []
@@ -280,8 +305,23 @@ class Archive:
             self.catalog.mark_embedded(done_rows, run_id)
             done_rows.clear()
 
-        counts = run(jobs, self.embedder if jobs else None, on_batch, on_failures, checkpoint,
-                     batch_size=batch_size, checkpoint_every=checkpoint_every, progress=progress) if jobs else None
+        runtime = self.manifest.setdefault("runtime", {})
+        if engine is not None:
+            runtime["engine"] = engine
+        if jobs and getattr(self, "_cluster", None) is not None:
+            return self._finish_add(cs, errors, run_id, jobs, on_batch, on_failures, checkpoint,
+                                    checkpoint_every, progress)
+        if jobs:
+            from .engines import EngineError
+
+            try:
+                runtime["engine_used"] = self.embedder.use_engine(runtime.get("engine", "auto"), may_export=True,
+                                                                  images=len(jobs))
+            except EngineError as exc:
+                raise ArchiveError(str(exc)) from None
+        counts = run(jobs, self.embedder, on_batch, on_failures, checkpoint, batch_size=batch_size,
+                     checkpoint_every=checkpoint_every, readers=workers, file_timeout=file_timeout,
+                     progress=progress) if jobs else None
         embedded = counts.embedded if counts else 0
         failed = (counts.failed if counts else 0) + len(errors)
         interrupted = bool(counts and counts.interrupted)
@@ -289,7 +329,34 @@ class Archive:
             self._maybe_learn_whitening()
         report = {**cs.counts(), "embedded": embedded, "failed": failed}
         self.catalog.finish_run(run_id, "interrupted" if interrupted else "done", report)
-        return {**report, "run_id": run_id, "interrupted": interrupted, "known_failures": cs.known_failures}
+        speed = {"engine": counts.engine, "seconds": round(counts.seconds, 3), "peak_rss": counts.peak_rss,
+                 "peak_rss_workers": counts.peak_rss_workers} if counts else {}
+        return {**report, "run_id": run_id, "interrupted": interrupted, "known_failures": cs.known_failures, **speed}
+
+    def _finish_add(self, cs, errors, run_id, jobs, on_batch, on_failures, checkpoint, checkpoint_every, progress):
+        """The embedding part of add() on a Dask cluster; the same bookkeeping as on one machine."""
+        from . import cluster as dask_run
+
+        client = self._cluster
+        own = isinstance(client, str)
+        try:
+            if own:
+                client = dask_run.connect(client)
+        except Exception as exc:
+            raise ArchiveError(f"cannot reach the Dask scheduler at {self._cluster}: {exc}") from None
+        try:
+            counts = dask_run.run(jobs, dask_run.worker_settings(self.manifest), on_batch, on_failures, checkpoint,
+                                  client=client, checkpoint_every=checkpoint_every, progress=progress)
+        finally:
+            if own:
+                client.close()
+        failed = counts.failed + len(errors)
+        if not counts.interrupted:
+            self._maybe_learn_whitening()
+        report = {**cs.counts(), "embedded": counts.embedded, "failed": failed}
+        self.catalog.finish_run(run_id, "interrupted" if counts.interrupted else "done", report)
+        return {**report, "run_id": run_id, "interrupted": counts.interrupted, "known_failures": cs.known_failures,
+                "engine": counts.engine, "seconds": round(counts.seconds, 3)}
 
     def _save_stores(self) -> None:
         for layer in self.layer_names:
@@ -297,6 +364,7 @@ class Archive:
             self.store(layer).save(self.db / entry["file"])
         self.manifest["generation"] += 1
         self.manifest["counts"] = {layer: len(self.store(layer)) for layer in self.layer_names}
+        self.manifest["indexes"] = {layer: self.store(layer).describe() for layer in self.layer_names}
         mf.write(self.db, self.manifest)
 
     def _writer_lock(self):
@@ -351,7 +419,7 @@ class Archive:
             pca = PCAWhitening().fit(raw)
             file = f"whitening-{self._layer(layer)['file'].removesuffix('.faiss')}.npz"
             pca.save(self.db / file)
-            fresh = VectorStore(pca.out_dim)
+            fresh = VectorStore(pca.out_dim, policy=IndexPolicy.from_dict(self.manifest.get("vector_index")))
             fresh.add(ids, pca.transform(raw))
             self._stores[layer] = fresh
             self._whitening[layer] = pca
@@ -388,7 +456,9 @@ class Archive:
             try:
                 # Decoded exactly as at indexing time, so a file's query descriptor equals its stored one;
                 # a region needs the full resolution.
-                image = open_image(query, min_side=self.backbone.input_size if box is None else None).image
+                from .reader import decode_side
+
+                image = open_image(query, min_side=decode_side(self.backbone.input_size) if box is None else None).image
             except DecodeError as exc:
                 what = "the uploaded file" if isinstance(query, (bytes, bytearray)) else query
                 raise ArchiveError(f"cannot use {what} as a query: {exc.reason}") from None
@@ -517,7 +587,8 @@ class Archive:
         m = self.manifest
         layers = [
             {**{k: l[k] for k in ("name", "node", "channels", "stride", "dim")}, "vectors": len(self.store(l["name"])),
-             "hint": PRESET_HINTS.get(l["name"], "")}
+             "hint": PRESET_HINTS.get(l["name"], ""), "index": self.store(l["name"]).describe(),
+             "bytes_per_vector": self.store(l["name"]).bytes_per_vector()}
             for l in m["layers"]
         ]
         return {
@@ -527,6 +598,7 @@ class Archive:
             "whitening": {"enabled": m["whitening"]["enabled"], "learned": sorted(m["whitening"]["learned"])},
             "default_layer": m["default_layer"],
             "layers": layers,
+            "index_bytes_per_image": sum(l["bytes_per_vector"] for l in layers),
             **summary,
         }
 

@@ -18,6 +18,18 @@ def _fail(exc: Exception) -> None:
     sys.exit(2)
 
 
+def _cluster(value: str | None):
+    """local:N -> a new local Dask cluster of N processes (its client); an address passes through."""
+    if not value or not value.startswith("local:"):
+        return value
+    from .cluster import connect
+
+    try:
+        return connect(workers=int(value.split(":", 1)[1]))
+    except ValueError:
+        _fail(click.UsageError("--cluster local:N takes a number of worker processes"))
+
+
 def _layers(value: str | None) -> list[str] | None:
     return [v.strip() for v in value.split(",") if v.strip()] if value else None
 
@@ -27,8 +39,9 @@ def _layers(value: str | None) -> list[str] | None:
 def main() -> None:
     """Index image archives by the layers of a pretrained network, and search them by example.
 
-    Everything stays on this machine: nothing is uploaded, and kinscope never changes, moves or
-    deletes files in the archive. A similarity score is evidence for a person to review, not a verdict.
+    Everything stays on this machine: nothing is uploaded, and kinscope never changes or deletes files
+    in the archive (it moves them only for `duplicates --move-to DIR --apply`, and `restore` puts them
+    back). A similarity score is evidence for a person to review, not a verdict.
     """
 
 
@@ -42,16 +55,24 @@ def main() -> None:
 @click.option("--gem-p", type=float, help="GeM pooling exponent (default 3; 1 = average pooling).")
 @click.option("--whiten/--no-whiten", default=None, help="Learn PCA whitening once the archive holds 1000 images.")
 @click.option("--batch-size", default=16, show_default=True, type=click.IntRange(1, 256))
+@click.option("--engine", type=click.Choice(["auto", "torch", "onnx"]),
+              help="Inference engine: auto (default: ONNX Runtime when its one-off export pays off), torch or onnx. "
+              "A preference only: descriptors of both are interchangeable.")
+@click.option("--workers", type=click.IntRange(1, 64), help="Decode worker processes (default: one per core).")
+@click.option("--cluster", metavar="ADDRESS", help="Send decoding and embedding to a Dask scheduler "
+              "(tcp://HOST:8786, or tls://...), or to a new local cluster with local:N (N worker processes).")
 @click.option("--checkpoint-every", default=512, show_default=True, type=click.IntRange(1, 100_000),
               help="Save progress after this many images (a crash loses at most this many).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
 @click.option("--json", "as_json", is_flag=True, help="Print the run's counts as JSON.")
-def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, checkpoint_every, quiet, as_json):
+def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, engine, workers, cluster,
+              checkpoint_every, quiet, as_json):
     """Index every image below PATHS into --db; re-running only does what changed."""
     try:
         with Archive.open(db, create=True, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
                           whiten=whiten, weights=weights) as archive:
-            report = archive.add(paths, progress=not quiet, batch_size=batch_size, checkpoint_every=checkpoint_every)
+            report = archive.add(paths, progress=not quiet, batch_size=batch_size, checkpoint_every=checkpoint_every,
+                                 engine=engine, workers=workers, cluster=_cluster(cluster))
     except ArchiveError as exc:
         _fail(exc)
     except KeyboardInterrupt:  # before the embedding loop (which handles Ctrl-C itself): nothing half-done
@@ -65,6 +86,10 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, c
         f"{report['unchanged']} unchanged; {report['embedded']} embedded, {report['failed']} could not be read"
         + (f" ({report['known_failures']} known failures not retried)" if report["known_failures"] else "")
     )
+    if report.get("engine"):
+        rate = report["embedded"] / report["seconds"] if report["seconds"] else 0.0
+        click.echo(f"{rate:.1f} images/s with {report['engine']}; peak memory {report['peak_rss'] / 2**20:.0f} MB "
+                   f"(+ {report['peak_rss_workers'] / 2**20:.0f} MB in decode workers)")
     if report["failed"] or report["known_failures"]:
         click.echo(f"See the reasons with: kinscope info --db {db}")
     if report["interrupted"]:
@@ -136,6 +161,12 @@ def info(db, as_json):
         click.echo(f"  {mark} {l['name']:<10} {l['node']:<22} {l['channels']:>5} ch  stride {l['stride']:>2}  "
                    f"{l['vectors']} vectors  {l['hint']}")
     click.echo("  (* = default layer for search)")
+    kinds = []
+    for l in data["layers"]:
+        ix = l["index"]
+        kinds.append(f"{l['name']} {ix['type']}" + (f" (nlist {ix['nlist']}, nprobe {ix['nprobe']}"
+                     + (f", recall@10 {ix['recall_at_10']:.3f}" if "recall_at_10" in ix else "") + ")" if "nlist" in ix else ""))
+    click.echo(f"indexes   {'; '.join(kinds)}; about {data['index_bytes_per_image']:.0f} bytes per image in memory")
     if data["last_run"]:
         r = data["last_run"]
         click.echo(f"last run  {r['started_at']} -> {r['finished_at'] or '(running)'}: {r['status']}")
@@ -215,6 +246,12 @@ def serve(db, host, port, token):
     click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + (f"?token=..." if token else ""))
     click.echo("Only this machine can reach it on 127.0.0.1. Stop with Ctrl-C.")
     run_server(db, host, port, token)
+
+
+from .cli_duplicates import duplicates_cmd, restore_cmd  # noqa: E402
+
+main.add_command(duplicates_cmd)
+main.add_command(restore_cmd)
 
 
 if __name__ == "__main__":

@@ -1,18 +1,24 @@
-"""The indexing job: read and decode in threads, embed in batches, checkpoint stores then catalog."""
+"""The indexing job: decode in worker processes, embed in batches, checkpoint stores then catalog.
+
+Decode workers (index.decode_pool) read, hash, decode at reduced size and resize each file while the
+main thread runs batched inference on what they sent; a bounded number of files is in flight, so
+memory stays flat whatever the archive size. The cores are shared out so the two sides do not fight:
+the inference engine gets `inference_threads` threads that sleep rather than spin when idle, each
+decode worker one thread.
+"""
 from __future__ import annotations
 
-import hashlib
 import os
+import resource
 import sys
-from collections import deque
-from concurrent.futures import Future, ThreadPoolExecutor
+import time
 from dataclasses import dataclass
-from typing import Callable, Iterable, Iterator
+from typing import Callable
 
 import numpy as np
 from tqdm import tqdm
 
-from .decode import DecodeError, open_image
+from .decode_pool import DecodePool
 from .embed import Embedder
 
 
@@ -27,50 +33,31 @@ class RunCounts:
     embedded: int = 0
     failed: int = 0
     interrupted: bool = False
+    engine: str = ""
+    seconds: float = 0.0
+    peak_rss: int = 0  # bytes, the indexing process (its lifetime peak: the CLI runs one job)
+    peak_rss_workers: int = 0  # bytes, sum over decode workers of each one's peak (an upper bound)
+    replaced_workers: int = 0  # decode workers killed on a timeout or lost to a crash
 
 
-def read_one(job: Job, embedder: Embedder) -> dict:
-    """Read, hash, decode and preprocess one file; failures come back as a reason, never raise."""
+def cores() -> int:
     try:
-        with open(job.path, "rb") as fh:
-            data = fh.read()
-        st = os.stat(job.path)
-    except OSError as exc:
-        return {"job": job, "error": f"cannot read file: {exc.strerror or exc}"}
-    try:
-        decoded = open_image(data, min_side=embedder.size)
-        x = embedder.preprocess(decoded.image)
-    except DecodeError as exc:
-        return {"job": job, "error": exc.reason, "size": st.st_size, "mtime": st.st_mtime}
-    except Exception as exc:  # a decoder bug must cost one file, not the night's run
-        return {"job": job, "error": f"could not decode: {type(exc).__name__}: {exc}", "size": st.st_size, "mtime": st.st_mtime}
-    meta = decoded.metadata
-    return {
-        "job": job,
-        "x": x,
-        "row": {
-            "id": job.id,
-            "sha256": hashlib.sha256(data).hexdigest(),
-            "width": decoded.width,
-            "height": decoded.height,
-            "format": decoded.format,
-            "captured_at": meta.get("captured_at"),
-            "camera": meta.get("camera"),
-            "title": meta.get("title"),
-            "keywords": meta.get("keywords") or [],
-        },
-    }
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not Linux
+        return os.cpu_count() or 1
 
 
-def bounded_map(fn: Callable, items: Iterable, pool: ThreadPoolExecutor, window: int) -> Iterator:
-    """Like pool.map, in order, but with at most `window` items in flight (memory stays flat)."""
-    pending: deque[Future] = deque()
-    for item in items:
-        pending.append(pool.submit(fn, item))
-        if len(pending) >= window:
-            yield pending.popleft().result()
-    while pending:
-        yield pending.popleft().result()
+def configure_threads(inference_threads: int) -> None:
+    """Thread pools of the indexing process: torch (pooling, torch engine) and FAISS share one count."""
+    import faiss
+    import torch
+
+    torch.set_num_threads(inference_threads)
+    faiss.omp_set_num_threads(inference_threads)
+
+
+def peak_rss_self() -> int:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # Linux reports KiB
 
 
 def run(
@@ -80,52 +67,80 @@ def run(
     on_failures: Callable[[list[dict]], None],
     checkpoint: Callable[[], None],
     *,
-    batch_size: int = 16,
+    batch_size: int = 32,
     checkpoint_every: int = 512,
-    readers: int = 2,
+    readers: int | None = None,
+    inference_threads: int | None = None,
+    file_timeout: float | None = None,
+    decode_nice: int = 0,
+    checkpoint_share: float = 0.05,
     progress: bool = True,
 ) -> RunCounts:
-    """Embed every job; call on_batch(ids, descriptors, rows, peaks) per batch and checkpoint() regularly."""
-    counts = RunCounts()
+    """Embed every job; call on_batch(ids, descriptors, rows, peaks) per batch and checkpoint() regularly.
+
+    readers: decode worker processes (default: one per core). file_timeout: seconds after which a
+    file's decode is abandoned and recorded as a failure (default: no limit). Checkpoints come every
+    `checkpoint_every` embedded images, spaced out so that saving takes at most `checkpoint_share`
+    of the time as the stores grow.
+    """
+    started = time.monotonic()
+    n_cores = cores()
+    configure_threads(inference_threads or n_cores)
+    counts = RunCounts(engine=embedder.engine.name)
     bar = tqdm(total=len(jobs), unit="img", disable=not progress, file=sys.stderr, dynamic_ncols=True,
                desc="indexing")
-    xs, rows, failures = [], [], []
+    pixels, rows, failures = [], [], []
     since_checkpoint = 0
+    last_save = {"end": time.monotonic(), "seconds": 0.0}
 
     def flush() -> None:
-        nonlocal xs, rows, since_checkpoint
-        if xs:
-            descriptors, peaks = embedder.embed_with_peaks(np.stack(xs))
+        nonlocal pixels, rows, since_checkpoint
+        if pixels:
+            descriptors, peaks = embedder.embed_pixels(np.stack(pixels))
             on_batch(np.array([r["id"] for r in rows], np.int64), descriptors, rows, peaks)
             counts.embedded += len(rows)
             since_checkpoint += len(rows)
             bar.update(len(rows))
-            xs, rows = [], []
+            pixels, rows = [], []
 
-    pool = ThreadPoolExecutor(max_workers=readers, thread_name_prefix="kinscope-read")
+    def save() -> None:
+        t = time.monotonic()
+        on_failures(failures)
+        failures.clear()
+        checkpoint()
+        last_save["end"] = time.monotonic()
+        last_save["seconds"] = last_save["end"] - t
+
+    workers = readers or n_cores
+    pool = DecodePool(embedder.size, workers, file_timeout=file_timeout, prefetch=2,
+                      in_flight=2 * batch_size + 2 * workers, nice=decode_nice)
+    results = pool.map(jobs, path_of=lambda j: j.path)
     try:
-        for result in bounded_map(lambda j: read_one(j, embedder), jobs, pool, window=batch_size * 3):
+        for job, result in results:
             if "error" in result:
-                failures.append(result)
+                failures.append({"job": job, **result})
                 counts.failed += 1
                 bar.update(1)
             else:
-                xs.append(result["x"])
-                rows.append(result["row"])
-            if len(xs) >= batch_size:
+                pixels.append(result["pixels"])
+                rows.append({"id": job.id, **result["row"]})
+            if len(pixels) >= batch_size:
                 flush()
-            if since_checkpoint >= checkpoint_every:
-                on_failures(failures)
-                failures = []
-                checkpoint()
+            spacing = last_save["seconds"] * (1 / checkpoint_share - 1)
+            if since_checkpoint >= checkpoint_every and time.monotonic() - last_save["end"] >= spacing:
+                save()
                 since_checkpoint = 0
         flush()
     except KeyboardInterrupt:
         counts.interrupted = True
-        xs, rows = [], []  # the batch in flight is dropped; it stays pending and is redone next time
+        pixels, rows = [], []  # the batch in flight is dropped; it stays pending and is redone next time
     finally:
-        pool.shutdown(wait=True, cancel_futures=True)
-        on_failures(failures)
-        checkpoint()
+        results.close()  # stops the dispatcher thread before the workers are told to leave
+        pool.close()
+        save()
         bar.close()
+        counts.seconds = time.monotonic() - started
+        counts.peak_rss = peak_rss_self()
+        counts.peak_rss_workers = pool.peak_rss()
+        counts.replaced_workers = pool.replaced
     return counts

@@ -1,21 +1,38 @@
-"""One FAISS index per layer, keyed by catalog id, persisted atomically."""
+"""One FAISS index per layer, keyed by catalog id, persisted atomically.
+
+The index type follows the store's size (index.vector_index): exact inner-product search (flat) while
+small, then IVF with 8-bit scalar quantization, trained on a sample of the stored vectors, its probe
+count set by measuring recall@10 against exact search. Both keep ids removable, which incremental
+re-indexing and Archive.reconcile() need. Scores are inner products of L2-normalised vectors
+(cosine similarities; with SQ8 codes to about 1e-3).
+"""
 from __future__ import annotations
 
 import os
 import tempfile
 from pathlib import Path
+from typing import BinaryIO, Callable
 
 import faiss
 import numpy as np
 
+from . import vector_index as vi
+from .vector_index import IndexPolicy
 
-def atomic_write(path: Path, data: bytes) -> None:
-    """Write to a temporary file in the same folder, fsync, rename over the target, fsync the folder."""
+
+def atomic_write(path: Path, data: bytes | Callable[[BinaryIO], None]) -> None:
+    """Write to a temporary file in the same folder, fsync, rename over the target, fsync the folder.
+
+    `data` is the bytes, or a function that writes them to the open file (streams large indexes).
+    """
     path = Path(path)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
+            if callable(data):
+                data(fh)
+            else:
+                fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -31,39 +48,70 @@ def atomic_write(path: Path, data: bytes) -> None:
 
 
 class VectorStore:
-    """Exact inner-product search over L2-normalised descriptors (inner product = cosine)."""
+    """Nearest neighbours by inner product over L2-normalised descriptors (inner product = cosine)."""
 
-    def __init__(self, dim: int, index: faiss.Index | None = None):
+    def __init__(self, dim: int, index: faiss.Index | None = None, *, policy: IndexPolicy | None = None,
+                 measured: dict | None = None):
         self.dim = dim
-        self.index = index if index is not None else faiss.IndexIDMap2(faiss.IndexFlatIP(dim))
+        self.policy = policy or IndexPolicy()
+        self.index = index if index is not None else vi.flat(dim)
+        self.measured = dict(measured or {})  # how the current index was built and how well it recalls
         assert self.index.d == dim, f"index dimension {self.index.d} != {dim}"
+        self._max_id: int | None = None
+
+    @property
+    def kind(self) -> str:
+        return vi.kind_of(self.index)
 
     def __len__(self) -> int:
         return int(self.index.ntotal)
 
     def ids(self) -> np.ndarray:
-        return faiss.vector_to_array(self.index.id_map).astype(np.int64)
+        return vi.stored_ids(self.index)
+
+    def _largest_id(self) -> int:
+        if self._max_id is None:
+            ids = self.ids()
+            self._max_id = int(ids.max()) if len(ids) else -1
+        return self._max_id
 
     def add(self, ids: np.ndarray, vectors: np.ndarray) -> None:
-        """Insert or replace the vectors of these ids."""
+        """Insert or replace the vectors of these ids; the index type follows the new size."""
         n, d = vectors.shape
         assert d == self.dim, f"expected vectors of dimension {self.dim}, got {d}"
         assert ids.shape == (n,), f"expected {n} ids, got shape {ids.shape}"
         ids = np.ascontiguousarray(ids, dtype=np.int64)
-        self.remove(ids)
+        if n == 0:
+            return
+        if len(self) and int(ids.min()) <= self._largest_id():
+            self.remove(ids)  # a replacement; fresh catalog ids (above every stored one) skip the scan
         self.index.add_with_ids(np.ascontiguousarray(vectors, dtype=np.float32), ids)
+        if self._max_id is not None:
+            self._max_id = max(self._max_id, int(ids.max()))
+        self.maintain()
 
     def remove(self, ids: np.ndarray) -> int:
         ids = np.ascontiguousarray(ids, dtype=np.int64)
         if len(ids) == 0 or len(self) == 0:
             return 0
-        return int(self.index.remove_ids(faiss.IDSelectorBatch(ids)))
+        removed = vi.remove(self.index, ids)
+        if removed:
+            self._max_id = None
+            self.maintain()
+        return removed
 
     def reconstruct(self, ids: np.ndarray) -> np.ndarray:
-        return np.stack([self.index.reconstruct(int(i)) for i in ids]) if len(ids) else np.zeros((0, self.dim), np.float32)
+        """The stored vectors of these ids (decoded from 8-bit codes for IVF: about 1e-3 off)."""
+        ids = np.ascontiguousarray(ids, dtype=np.int64)
+        if len(ids) == 0:
+            return np.zeros((0, self.dim), np.float32)
+        return vi.reconstruct(self.index, ids)
 
     def search(self, queries: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
-        """(nq, d) -> scores (nq, k') and ids (nq, k'), best first; k' = min(k, stored)."""
+        """(nq, d) -> scores (nq, k') and ids (nq, k'), best first; k' = min(k, stored).
+
+        An approximate index may return fewer than k' hits for a query; the rest have id -1.
+        """
         nq, d = queries.shape
         assert d == self.dim, f"expected queries of dimension {self.dim}, got {d}"
         k = min(k, len(self))
@@ -71,11 +119,38 @@ class VectorStore:
             return np.zeros((nq, 0), np.float32), np.zeros((nq, 0), np.int64)
         return self.index.search(np.ascontiguousarray(queries, dtype=np.float32), k)
 
+    # --- index type -----------------------------------------------------------------------------
+    def maintain(self) -> bool:
+        """Rebuild when the size calls for another index (flat -> IVF, or IVF grown past its lists)."""
+        wanted = vi.wanted(self.index, self.policy)
+        if wanted is None:
+            return False
+        self.rebuild(wanted)
+        return True
+
+    def rebuild(self, kind: str | None = None) -> None:
+        """Build the index `kind` (default: what the policy wants now) from the stored vectors."""
+        kind = kind or vi.wanted(self.index, self.policy) or self.kind
+        self.index, self.measured = vi.rebuild(self.index, kind, self.policy)
+        self._max_id = None
+
+    def describe(self) -> dict:
+        """Type and parameters (recorded in the manifest), with the recall measured when it was built."""
+        return {**vi.describe(self.index), **self.measured}
+
+    def bytes_per_vector(self) -> float:
+        """Memory the index holds per stored vector: codes, id, id lookup (an estimate; see bench_search)."""
+        return vi.bytes_per_vector(self.index)
+
+    # --- files ----------------------------------------------------------------------------------
     def save(self, path: Path) -> None:
-        atomic_write(Path(path), faiss.serialize_index(self.index).tobytes())
+        index = self.index
+        atomic_write(Path(path), lambda fh: faiss.write_index(index, faiss.PyCallbackIOWriter(fh.write)))
 
     @classmethod
-    def load(cls, path: Path) -> "VectorStore":
-        data = np.fromfile(path, dtype=np.uint8)
-        index = faiss.deserialize_index(data)
-        return cls(index.d, index)
+    def load(cls, path: Path, *, policy: IndexPolicy | None = None, measured: dict | None = None) -> "VectorStore":
+        index = faiss.read_index(str(path))
+        info = vi.describe(index)
+        # What was measured at build time is kept only if it describes this very index.
+        keep = measured if measured and all(measured.get(k, v) == v for k, v in info.items() if k != "vectors") else None
+        return cls(index.d, index, policy=policy, measured={k: v for k, v in (keep or {}).items() if k not in info})

@@ -1,0 +1,130 @@
+"""The ONNX Runtime engine against torch, the reference; its cache; engine choice in an archive."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from index.embed import Embedder
+from index.engines import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path
+from index.layers import resolve_layers
+
+
+@pytest.fixture(scope="module")
+def embedders(lite0, tmp_path_factory):
+    backbone, model = lite0
+    layers = resolve_layers(backbone, model, list(backbone.default_layers))
+    cache = tmp_path_factory.mktemp("engines")
+    reference = Embedder(backbone, model, layers, engine="torch")
+    onnx = Embedder(backbone, model, layers, cache_dir=cache)
+    assert onnx.use_engine("onnx", may_export=True) == "onnx"
+    return reference, onnx, cache
+
+
+def test_onnx_descriptors_equal_torch_descriptors(embedders, sample_images):
+    # Reference: torch eager through torchvision's feature extractor (index.engines, the reference engine).
+    reference, onnx, _ = embedders
+    batch = np.stack([reference.preprocess(im) for im in sample_images.values()])
+    want, want_peaks = reference.embed_with_peaks(batch)
+    got, got_peaks = onnx.embed_with_peaks(batch)
+    for layer in want:
+        assert got[layer].shape == want[layer].shape
+        assert np.abs(got[layer] - want[layer]).max() < 1e-4, layer  # the bound set in issue 5
+        assert np.allclose(np.linalg.norm(got[layer], axis=1), 1.0, atol=1e-5)
+        assert np.abs(got_peaks[layer][0] - want_peaks[layer][0]).max() < 1e-3, layer  # channel maxima
+        assert got_peaks[layer][2] == want_peaks[layer][2]  # same grid
+        # The position of a maximum can differ only where two positions tie to float precision.
+        assert (got_peaks[layer][1] == want_peaks[layer][1]).mean() > 0.99, layer
+
+
+def test_batch_size_does_not_change_onnx_descriptors(embedders, sample_images):
+    _, onnx, _ = embedders
+    batch = np.stack([onnx.preprocess(im) for im in list(sample_images.values())[:5]])
+    together = onnx.embed(batch)
+    one_by_one = [onnx.embed(batch[i:i + 1]) for i in range(len(batch))]
+    for layer, vectors in together.items():
+        assert np.abs(np.concatenate([o[layer] for o in one_by_one]) - vectors).max() < 1e-5
+
+
+def test_the_exported_model_is_cached_under_a_key_of_backbone_weights_and_layers(embedders, lite0):
+    reference, onnx, cache = embedders
+    backbone, model = lite0
+    files = list(cache.glob("*.onnx"))
+    assert len(files) == 1
+    stamp = files[0].stat().st_mtime_ns
+    again = Embedder(backbone, model, reference.layers, cache_dir=cache)
+    assert again.use_engine("auto", may_export=False) == "onnx"  # found in the cache, not exported again
+    assert files[0].stat().st_mtime_ns == stamp
+    manifest = backbone.manifest()
+    nodes = [l.node for l in reference.layers]
+    assert cached_model_path(cache, manifest, nodes) == files[0]
+    assert cached_model_path(cache, manifest, nodes[:2]) != files[0]
+    assert cached_model_path(cache, {**manifest, "weights_sha256": "0" * 64}, nodes) != files[0]
+
+
+def test_auto_picks_torch_for_a_few_images_without_a_cached_model(lite0, tmp_path):
+    backbone, model = lite0
+    layers = resolve_layers(backbone, model, ["colour"])
+    e = Embedder(backbone, model, layers, cache_dir=tmp_path)
+    assert e.use_engine("auto", may_export=True, images=AUTO_EXPORT_MIN_IMAGES - 1) == "torch"
+    assert not list(tmp_path.iterdir())
+    with pytest.raises(EngineError, match="not exported"):
+        e.use_engine("onnx", may_export=False)
+    with pytest.raises(EngineError, match="unknown engine"):
+        e.use_engine("tensorrt")
+
+
+def test_an_archive_indexed_with_onnx_is_searched_with_torch(tmp_path, sample_images):
+    from index.api import Archive
+
+    folder = tmp_path / "imgs"
+    folder.mkdir()
+    names = ["astronaut", "coffee", "chelsea", "rocket", "brick"]
+    for name in names:
+        sample_images[name].save(folder / f"{name}.png")
+    archive = Archive.open(tmp_path / "db", create=True, layers=["texture", "objects"])
+    report = archive.add([folder], progress=False, engine="onnx")
+    assert report["engine"] == "onnx" and report["embedded"] == len(names)
+    assert archive.manifest["runtime"]["engine"] == "onnx"
+    # Reopened with the torch preference: the settings check does not refuse it, and the torch
+    # descriptor of each file finds the ONNX descriptor stored for it with a score of 1.
+    reopened = Archive.open(tmp_path / "db", layers=["texture", "objects"])
+    reopened.manifest["runtime"]["engine"] = "torch"
+    assert reopened.embedder.engine.name == "torch"
+    for name in names:
+        top = reopened.search(str(folder / f"{name}.png"), layer="objects", k=1)["results"][0]
+        assert top["path"].endswith(f"{name}.png")
+        assert top["score"] == pytest.approx(1.0, abs=1e-4)
+
+
+def test_a_reader_never_exports_the_model(tmp_path, sample_images):
+    from index.api import Archive
+
+    folder = tmp_path / "imgs"
+    folder.mkdir()
+    sample_images["coffee"].save(folder / "coffee.png")
+    archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
+    archive.add([folder], progress=False)  # one image: "auto" does not export for so few
+    assert not (tmp_path / "db" / "engines").exists()
+    reader = Archive.open(tmp_path / "db")
+    reader.search(str(folder / "coffee.png"), k=1)
+    assert reader.embedder.engine.name == "torch"
+    assert not (tmp_path / "db" / "engines").exists()
+
+
+@pytest.mark.parametrize("p", [1.0, 3.0, 4.5])
+def test_pooling_equals_the_reference_gem_and_peaks(p):
+    # Reference: index.pooling.gem (GeM as defined by Radenovic, Tolias and Chum) and torch's max.
+    import torch
+
+    from index.embed import pool
+    from index.pooling import gem, l2_normalize
+
+    g = torch.Generator().manual_seed(0)
+    fmap = torch.rand(3, 16, 9, 7, generator=g) * 6
+    fmap[fmap < 2] = 0  # post-ReLU maps are mostly zeros
+    fmap[1, 4] = 0  # a dead channel
+    descriptors, peaks = pool({"x": fmap}, p)
+    assert np.abs(descriptors["x"] - l2_normalize(gem(fmap, p).numpy())).max() < 1e-6
+    values, where = fmap.flatten(2).max(dim=2)
+    assert np.array_equal(peaks["x"][0], values.numpy()) and np.array_equal(peaks["x"][1], where.numpy())
+    assert peaks["x"][2] == (9, 7)

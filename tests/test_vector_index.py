@@ -1,0 +1,140 @@
+"""Vector index types chosen by size: the approximate index against exact search."""
+from __future__ import annotations
+
+import faiss
+import numpy as np
+import pytest
+
+from index.store import VectorStore
+from index.synthetic import Descriptors
+from index.vector_index import FLAT, IVF, IndexPolicy, lists_for
+
+DIM = 672  # the default search layer (parts) of efficientnet_lite0
+N = 24_000
+POLICY = IndexPolicy(flat_max=8_000)
+
+
+@pytest.fixture(scope="module")
+def data():
+    gen = Descriptors(DIM, seed=5)
+    vectors = gen.database(N)
+    ids = np.random.default_rng(1).permutation(10 * N)[:N].astype(np.int64) + 1
+    return gen, vectors, ids
+
+
+@pytest.fixture(scope="module")
+def grown(data):
+    """A store filled batch by batch, as the indexer fills it: flat first, IVF once past flat_max."""
+    gen, vectors, ids = data
+    store = VectorStore(DIM, policy=POLICY)
+    kinds = []
+    for start in range(0, N, 1000):
+        store.add(ids[start:start + 1000], vectors[start:start + 1000])
+        kinds.append(store.kind)
+    return store, kinds
+
+
+def exact(vectors, ids, queries, k):
+    # Reference: FAISS exact inner-product search (IndexFlatIP), i.e. brute-force cosine similarity.
+    flat = faiss.IndexFlatIP(vectors.shape[1])
+    flat.add(vectors)
+    scores, rows = flat.search(queries, k)
+    return scores, ids[rows]
+
+
+def test_flat_while_small_then_ivf(grown):
+    store, kinds = grown
+    assert kinds[:7] == [FLAT] * 7 and kinds[-1] == IVF
+    info = store.describe()
+    assert info["type"] == IVF and info["vectors"] == N
+    assert info["nlist"] == lists_for(info["built_for"], POLICY)
+    assert 1 <= info["nprobe"] <= info["nlist"] // 4
+    assert info["recall_queries"] == POLICY.probe_queries and info["code_bytes"] == DIM  # 8 bits a dimension
+
+
+def test_recall_at_10_against_exact_search_on_new_queries(grown, data):
+    gen, vectors, ids = data
+    store, _ = grown
+    queries = gen.queries(200, N)
+    _, truth = exact(vectors, ids, queries, 10)
+    _, found = store.search(queries, 10)
+    recall = np.mean([len(set(f) & set(t)) / 10 for f, t in zip(found, truth)])
+    # The build measured recall on stored vectors; new queries from the same clusters come close to it.
+    assert recall >= 0.9, recall
+    assert store.describe()["recall_at_10"] >= 0.9
+
+
+def test_scores_are_cosine_similarities_to_8_bit_precision(grown, data):
+    # Reference: numpy inner products of the original L2-normalised vectors.
+    gen, vectors, ids = data
+    store, _ = grown
+    queries = gen.queries(20, N)
+    scores, found = store.search(queries, 10)
+    row_of = {int(i): r for r, i in enumerate(ids)}
+    for q, s, f in zip(queries, scores, found):
+        true = np.array([vectors[row_of[int(i)]] @ q for i in f])
+        assert np.abs(s - true).max() < 5e-3
+        assert np.all(np.diff(s) <= 1e-6)  # best first
+
+
+def test_ids_replace_remove_and_reconstruct_work_on_the_ivf_index(grown, data):
+    gen, vectors, ids = data
+    store, _ = grown
+    assert sorted(store.ids().tolist()) == sorted(ids.tolist())
+    target = ids[:3]
+    moved = gen.queries(3, N)
+    store.add(target, moved)  # re-embedded items: replaced, not duplicated
+    assert len(store) == N
+    assert np.abs(store.reconstruct(target) - moved).max() < 5e-3
+    scores, found = store.search(moved, 1)
+    assert found[:, 0].tolist() == target.tolist()
+    assert store.remove(np.concatenate([target, [-7]])) == 3
+    assert len(store) == N - 3 and not set(target.tolist()) & set(store.ids().tolist())
+    store.add(target, vectors[:3])  # put back for the other tests
+
+
+def test_save_and_load_keep_type_parameters_and_results(grown, data, tmp_path):
+    gen, vectors, ids = data
+    store, _ = grown
+    store.save(tmp_path / "v.faiss")
+    again = VectorStore.load(tmp_path / "v.faiss", policy=POLICY, measured=store.measured)
+    assert again.describe() == store.describe()
+    q = gen.queries(5, N)
+    assert np.array_equal(again.search(q, 10)[1], store.search(q, 10)[1])
+    # Measurements that describe another index (e.g. a manifest older than the file) are dropped.
+    stale = VectorStore.load(tmp_path / "v.faiss", measured={**store.measured, "nlist": 1})
+    assert "recall_at_10" not in stale.describe()
+
+
+def test_the_index_is_rebuilt_as_the_store_grows_and_shrinks(data):
+    gen, vectors, ids = data
+    policy = IndexPolicy(flat_max=2_000, train_per_list=20)
+    store = VectorStore(DIM, policy=policy)
+    store.add(ids[:2_000], vectors[:2_000])
+    first = store.describe()["nlist"]
+    store.add(ids[2_000:20_000], vectors[2_000:20_000])  # 10 times larger: the lists are retrained
+    assert store.kind == IVF and store.describe()["nlist"] >= 2 * first
+    assert store.describe()["built_for"] == 20_000
+    store.remove(ids[:19_500])  # below half of flat_max: exact again
+    assert store.kind == FLAT and len(store) == 500
+    assert np.abs(store.reconstruct(ids[19_500:19_505]) - vectors[19_500:19_505]).max() < 5e-3
+
+
+def test_pca_reduced_store_keeps_the_interface_and_cuts_code_size(data):
+    gen, vectors, ids = data
+    store = VectorStore(DIM, policy=IndexPolicy(flat_max=8_000, pca_dim=128))
+    store.add(ids[:12_000], vectors[:12_000])
+    info = store.describe()
+    assert info["pca_dim"] == 128 and info["code_bytes"] == 128
+    scores, found = store.search(vectors[:5], 1)
+    assert found[:, 0].tolist() == ids[:5].tolist()  # each stored vector finds itself
+    assert np.allclose(scores[:, 0], 1.0, atol=5e-3)
+    assert store.reconstruct(ids[:2]).shape == (2, DIM)
+
+
+def test_default_flat_limit_follows_the_work_of_an_exact_query():
+    policy = IndexPolicy()
+    # vectors x dimensions <= 32 million multiply-adds per query
+    assert policy.flat_limit(672) == 32_000_000 // 672
+    assert policy.flat_limit(1280) < policy.flat_limit(672) < policy.flat_limit(32) == 1_000_000
+    assert lists_for(1_000_000, policy) == 4096 and lists_for(50_000, policy) == 1024  # ~4 sqrt(n), power of 2
