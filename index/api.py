@@ -28,6 +28,7 @@ from .store import VectorStore
 from .vector_index import IndexPolicy
 
 DEFAULT_GEM_P = 3.0
+DEFAULT_FILE_TIMEOUT = 120.0  # seconds one file may take to read and decode before it is abandoned
 WRITE_ERRNOS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EPERM, errno.EDQUOT, errno.EFBIG}
 DEFAULT_WHITEN_MIN_IMAGES = 1000
 
@@ -232,7 +233,7 @@ class Archive:
         engine: "auto" (ONNX Runtime when its export pays off, else torch), "torch" or "onnx"; kept in
         the manifest as a preference only (the descriptors of both are interchangeable). workers:
         decode processes (default one per core); file_timeout: seconds before a file's decode is
-        abandoned and recorded as a failure (default no limit).
+        abandoned and recorded as a failure (default DEFAULT_FILE_TIMEOUT; 0 = no limit).
         """
         from .engines import ENGINES
 
@@ -245,6 +246,7 @@ class Archive:
         if not roots:
             raise ArchiveError("give at least one file or folder to index")
         self._cluster = cluster
+        file_timeout = DEFAULT_FILE_TIMEOUT if file_timeout is None else (float(file_timeout) or None)
         with self._writer_lock():
             try:
                 return self._add(roots, progress, batch_size, checkpoint_every, engine, workers, file_timeout)

@@ -59,20 +59,23 @@ def main() -> None:
               help="Inference engine: auto (default: ONNX Runtime when its one-off export pays off), torch or onnx. "
               "A preference only: descriptors of both are interchangeable.")
 @click.option("--workers", type=click.IntRange(1, 64), help="Decode worker processes (default: one per core).")
+@click.option("--file-timeout", type=click.FloatRange(0), help="Seconds one file may take to read and decode "
+              "before it is recorded as failed (default 120; 0 = no limit).")
 @click.option("--cluster", metavar="ADDRESS", help="Send decoding and embedding to a Dask scheduler "
               "(tcp://HOST:8786, or tls://...), or to a new local cluster with local:N (N worker processes).")
 @click.option("--checkpoint-every", default=512, show_default=True, type=click.IntRange(1, 100_000),
               help="Save progress after this many images (a crash loses at most this many).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
 @click.option("--json", "as_json", is_flag=True, help="Print the run's counts as JSON.")
-def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, engine, workers, cluster,
+def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, engine, workers, file_timeout, cluster,
               checkpoint_every, quiet, as_json):
     """Index every image below PATHS into --db; re-running only does what changed."""
     try:
         with Archive.open(db, create=True, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
                           whiten=whiten, weights=weights) as archive:
             report = archive.add(paths, progress=not quiet, batch_size=batch_size, checkpoint_every=checkpoint_every,
-                                 engine=engine, workers=workers, cluster=_cluster(cluster))
+                                 engine=engine, workers=workers, cluster=_cluster(cluster),
+                                 file_timeout=file_timeout)
     except ArchiveError as exc:
         _fail(exc)
     except KeyboardInterrupt:  # before the embedding loop (which handles Ctrl-C itself): nothing half-done
