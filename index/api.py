@@ -222,7 +222,7 @@ class Archive:
         return self._whitening.get(layer)
 
     # --- indexing ---------------------------------------------------------------------------
-    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 32,
+    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 16,
             checkpoint_every: int = 512, engine: str | None = None, workers: int | None = None,
             file_timeout: float | None = None, cluster=None) -> dict:
         """Index every image below these paths, incrementally; returns the run's counts.

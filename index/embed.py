@@ -19,27 +19,30 @@ def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray]
     """Feature maps -> per layer the L2-normalised GeM descriptor (N, C), and each channel's peak
     value (N, C), its flat position (N, C) and the grid (H, W).
 
-    The same arithmetic as index.pooling.gem (clamp at GEM_EPS, divide by the per-channel maximum,
-    power, mean, root, rescale), done in place and sharing the maximum with the peaks.
+    The arithmetic of index.pooling.gem (clamp at GEM_EPS, divide by the per-channel maximum, power,
+    mean, root, rescale; bit for bit the same result), done in place: the maps are overwritten.
+    In place matters: fresh 30 MB temporaries per batch cost more than the arithmetic (page faults).
     """
+    if p <= 0:
+        raise ValueError(f"GeM exponent must be positive, got {p}")
     descriptors, peaks = {}, {}
     with torch.inference_mode():
+        # Two taps can hand back one tensor (an identity layer): each gets its own copy first.
+        storages = [m.untyped_storage().data_ptr() for m in maps.values()]
+        shared = {ptr for ptr in storages if storages.count(ptr) > 1}
+        maps = {name: (m.clone() if m.untyped_storage().data_ptr() in shared else m) for name, m in maps.items()}
         for name, fmap in maps.items():
             n, c, h, w = fmap.shape
-            if p <= 0:
-                raise ValueError(f"GeM exponent must be positive, got {p}")
-            flat = fmap.reshape(n, c, h * w)
+            flat = fmap.contiguous().reshape(n, c, h * w)
             values, where = flat.max(dim=2)
-            scale = values.clamp_min(GEM_EPS).unsqueeze(2)  # = amax of the clamped map
-            x = flat.clamp_min(GEM_EPS)
+            peaks[name] = (values.numpy().copy(), where.numpy().astype(np.int64), (h, w))
+            x = flat.clamp_min_(GEM_EPS)
             if p == 1:
                 pooled = x.mean(dim=2)
             else:
-                x.div_(scale)
-                x = x.mul(x).mul_(x) if p == 3 else x.pow_(p)
-                pooled = x.mean(dim=2).pow_(1.0 / p).mul_(scale.squeeze(2))
+                scale = values.clamp_min(GEM_EPS).unsqueeze(2)  # = amax of the clamped map
+                pooled = x.div_(scale).pow_(p).mean(dim=2).pow_(1.0 / p).mul_(scale.squeeze(2))
             descriptors[name] = l2_normalize(pooled.numpy())
-            peaks[name] = (values.numpy(), where.numpy().astype(np.int64), (h, w))
     return descriptors, peaks
 
 

@@ -72,7 +72,7 @@ def run(
     readers: int | None = None,
     inference_threads: int | None = None,
     file_timeout: float | None = None,
-    decode_nice: int = 0,
+    decode_nice: int = 10,
     checkpoint_share: float = 0.05,
     progress: bool = True,
 ) -> RunCounts:

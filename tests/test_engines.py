@@ -123,8 +123,12 @@ def test_pooling_equals_the_reference_gem_and_peaks(p):
     fmap = torch.rand(3, 16, 9, 7, generator=g) * 6
     fmap[fmap < 2] = 0  # post-ReLU maps are mostly zeros
     fmap[1, 4] = 0  # a dead channel
-    descriptors, peaks = pool({"x": fmap}, p)
+    descriptors, peaks = pool({"x": fmap.clone()}, p)  # pool works in place
     assert np.abs(descriptors["x"] - l2_normalize(gem(fmap, p).numpy())).max() < 1e-6
     values, where = fmap.flatten(2).max(dim=2)
     assert np.array_equal(peaks["x"][0], values.numpy()) and np.array_equal(peaks["x"][1], where.numpy())
     assert peaks["x"][2] == (9, 7)
+    # Two layers handing back the same tensor (an identity tap) are both pooled from the original.
+    shared = fmap.clone()
+    twice, _ = pool({"a": shared, "b": shared}, p)
+    assert np.array_equal(twice["a"], twice["b"]) and np.abs(twice["a"] - descriptors["x"]).max() < 1e-6

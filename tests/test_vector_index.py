@@ -138,3 +138,27 @@ def test_default_flat_limit_follows_the_work_of_an_exact_query():
     assert policy.flat_limit(672) == 32_000_000 // 672
     assert policy.flat_limit(1280) < policy.flat_limit(672) < policy.flat_limit(32) == 1_000_000
     assert lists_for(1_000_000, policy) == 4096 and lists_for(50_000, policy) == 1024  # ~4 sqrt(n), power of 2
+
+
+def test_an_archive_switches_to_ivf_records_it_in_the_manifest_and_stays_consistent(tmp_path):
+    from index.api import Archive
+
+    folder = tmp_path / "imgs"
+    folder.mkdir()
+    rng = np.random.default_rng(3)
+    for i in range(48):  # generated images: blocks of random colours at random scales
+        cells = rng.integers(0, 255, (int(rng.integers(2, 9)),) * 2 + (3,), dtype=np.uint8)
+        from PIL import Image
+
+        Image.fromarray(cells).resize((96, 96), Image.NEAREST).save(folder / f"{i:02d}.png")
+    archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
+    archive.manifest["vector_index"] = {"flat_max": 30, "train_per_list": 4}  # tiny thresholds for a test
+    archive.add([folder], progress=False, batch_size=8)
+    info = archive.manifest["indexes"]["colour"]
+    assert info["type"] == IVF and info["vectors"] == 48 and "recall_at_10" in info
+    reopened = Archive.open(tmp_path / "db")
+    assert reopened.store("colour").describe() == info  # loaded with what was measured at build time
+    assert reopened.reconcile() == {"dropped": 0, "requeued": 0}
+    top = reopened.search(str(folder / "07.png"), k=1)["results"][0]
+    assert top["path"].endswith("07.png") and top["score"] == pytest.approx(1.0, abs=5e-3)
+    assert reopened.info()["layers"][0]["index"]["type"] == IVF
