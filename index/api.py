@@ -222,7 +222,7 @@ class Archive:
         return self._whitening.get(layer)
 
     # --- indexing ---------------------------------------------------------------------------
-    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 16,
+    def add(self, paths: Iterable[str | os.PathLike], *, progress: bool = True, batch_size: int = 8,
             checkpoint_every: int = 512, engine: str | None = None, workers: int | None = None,
             file_timeout: float | None = None, cluster=None) -> dict:
         """Index every image below these paths, incrementally; returns the run's counts.
@@ -267,8 +267,8 @@ class Archive:
         run_id = self.catalog.start_run(roots)
         errors: list[dict] = []
         cs = diff(walk(roots, errors), self.catalog.rows_under(roots), self.catalog.failures_under(roots))
-        for layer in self.layer_names:
-            self.store(layer).remove(np.array(cs.removed + [i for i, _ in cs.changed], np.int64))
+        gone = np.array(cs.removed + [i for i, _ in cs.changed], np.int64)
+        removed = sum(self.store(layer).remove(gone) for layer in self.layer_names) if len(gone) else 0
         self.catalog.delete_images(cs.removed)
         self.catalog.update_files(
             [(i, {"size": f["size"], "mtime": f["mtime"]}) for i, f in cs.touched]
@@ -278,7 +278,8 @@ class Archive:
         self.catalog.clear_failures(cs.gone_failures + [f["path"] for f in cs.new])
         self.catalog.record_failures([{**e, "size": None, "mtime": None} for e in errors], run_id)
         self.catalog.insert_pending(cs.new, run_id)
-        self._save_stores()  # removals are durable before any new work starts
+        if removed or not all((self.db / self._layer(layer)["file"]).exists() for layer in self.layer_names):
+            self._save_stores()  # removals are durable before any new work starts
         jobs = [Job(i, p) for i, p in self.catalog.pending(roots)]
 
         done_rows: list[dict] = []

@@ -54,7 +54,8 @@ def main() -> None:
 @click.option("--weights", type=click.Path(exists=True, dir_okay=False), help="Weights file (state dict) for the backbone.")
 @click.option("--gem-p", type=float, help="GeM pooling exponent (default 3; 1 = average pooling).")
 @click.option("--whiten/--no-whiten", default=None, help="Learn PCA whitening once the archive holds 1000 images.")
-@click.option("--batch-size", default=16, show_default=True, type=click.IntRange(1, 256))
+@click.option("--batch-size", default=8, show_default=True, type=click.IntRange(1, 256),
+              help="Images per forward pass (larger batches were no faster on CPU and take more memory).")
 @click.option("--engine", type=click.Choice(["auto", "torch", "onnx"]),
               help="Inference engine: auto (default: ONNX Runtime when its one-off export pays off), torch or onnx. "
               "A preference only: descriptors of both are interchangeable.")

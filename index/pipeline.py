@@ -18,7 +18,7 @@ from typing import Callable
 import numpy as np
 from tqdm import tqdm
 
-from .decode_pool import DecodePool
+from .decode_pool import DecodePool, peak_rss_of
 from .embed import Embedder
 
 
@@ -57,7 +57,13 @@ def configure_threads(inference_threads: int) -> None:
 
 
 def peak_rss_self() -> int:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # Linux reports KiB
+    """This process's peak resident memory in bytes.
+
+    VmHWM first: ru_maxrss survives exec on Linux, so a process started from a large parent reports
+    the parent's size (bench_index's kinscope runs read about 1.65 GB by ru_maxrss, where the same
+    command started from a shell peaked at 1.2 GB).
+    """
+    return peak_rss_of(os.getpid()) or resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # KiB on Linux
 
 
 def run(
@@ -67,7 +73,7 @@ def run(
     on_failures: Callable[[list[dict]], None],
     checkpoint: Callable[[], None],
     *,
-    batch_size: int = 32,
+    batch_size: int = 8,
     checkpoint_every: int = 512,
     readers: int | None = None,
     inference_threads: int | None = None,

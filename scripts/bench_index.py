@@ -177,7 +177,7 @@ def main() -> None:
     ap.add_argument("--photos", type=int, default=400, help="photo-sized JPEGs (3000 x 2000)")
     ap.add_argument("--small", type=int, default=1000, help="small JPEGs (640 x 480)")
     ap.add_argument("--naive", type=int, default=60, help="images per set timed for the naive pipeline")
-    ap.add_argument("--batch-size", type=int, default=16)
+    ap.add_argument("--batch-size", type=int, default=8)
     ap.add_argument("--workers", type=int, default=None, help="decode workers (default: one per core)")
     ap.add_argument("--repeat", type=int, default=3, help="rounds; each figure is the best round")
     ap.add_argument("--work", default=os.path.join(tempfile.gettempdir(), "kinscope-bench"))
