@@ -38,13 +38,10 @@ class ArchiveError(Exception):
 
 
 def _threads() -> None:
-    # One process, two cores: torch's intra-op pool gets them; FAISS the same. Readers are I/O-bound threads.
-    import faiss
-    import torch
+    # One process: torch's intra-op pool gets the cores, FAISS the same; large buffers are reused.
+    from .pipeline import configure_threads, cores
 
-    n = max(1, os.cpu_count() or 1)
-    torch.set_num_threads(n)
-    faiss.omp_set_num_threads(n)
+    configure_threads(cores())
 
 
 class Archive:

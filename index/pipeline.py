@@ -18,6 +18,7 @@ from typing import Callable
 import numpy as np
 from tqdm import tqdm
 
+from .allocator import keep_buffers
 from .decode_pool import DecodePool, peak_rss_of
 from .embed import Embedder
 
@@ -48,9 +49,12 @@ def cores() -> int:
 
 
 def configure_threads(inference_threads: int) -> None:
-    """Thread pools of the indexing process: torch (pooling, torch engine) and FAISS share one count."""
+    """Thread pools of the indexing process: torch (pooling, torch engine) and FAISS share one count;
+    and the allocator told to reuse large buffers (index.allocator)."""
     import faiss
     import torch
+
+    keep_buffers()
 
     torch.set_num_threads(inference_threads)
     faiss.omp_set_num_threads(inference_threads)

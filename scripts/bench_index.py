@@ -6,8 +6,8 @@ Two generated sets of JPEGs (photo-sized, 3000 x 2000, and small, 640 x 480) are
 scikit-image / scikit-learn sample photographs (random crops, resized, with sensor-like noise so the
 files are about 1.5 MB at quality 90, like camera JPEGs of that size). On each set, in this order:
 
-- naive: one file at a time in one process: read, hash, full-size decode, resize, torch eager forward
-  (batch of 1, torch using all cores), GeM pooling;
+- naive: one file at a time in one fresh process: read, hash, full-size decode, resize, torch eager
+  forward (batch of 1, torch using all cores), GeM pooling;
 - kinscope: `kinscope index` in a fresh process on a fresh database (scan, catalog, decode workers,
   batched ONNX Runtime, FAISS stores, checkpoints), the ONNX model exported beforehand (a one-off per
   database); the rate is over the indexing job, the command's start-up is printed beside it;
@@ -126,6 +126,39 @@ def naive(paths: list[str], embedder) -> float:
     return len(paths) / (time.perf_counter() - t)
 
 
+def naive_in_fresh_process(paths: list[str], work: Path) -> float:
+    """naive() in a new Python process: nothing kinscope does to the process (allocator settings, an
+    ONNX export, which leaves glibc's mmap threshold raised) may flatter or slow the baseline."""
+    import json
+    import subprocess
+
+    listing = work / "naive-paths.txt"
+    listing.write_text("\n".join(paths))
+    out = subprocess.run([sys.executable, __file__, "--naive-of", str(listing)], capture_output=True, text=True,
+                         check=True, cwd=ROOT)
+    return json.loads(out.stdout.strip().splitlines()[-1])["rate"]
+
+
+def naive_main(listing: str) -> None:
+    import json
+
+    import torch
+
+    from index.backbones import get_backbone
+    from index.embed import Embedder
+    from index.layers import resolve_layers
+    from index.pipeline import cores
+
+    torch.set_num_threads(cores())  # all cores for torch, as a straightforward script would have
+    backbone = get_backbone()
+    model = backbone.load()
+    embedder = Embedder(backbone, model, resolve_layers(backbone, model, list(backbone.default_layers)),
+                        engine="torch", threads=cores())
+    paths = Path(listing).read_text().split("\n")
+    naive(paths[:2], embedder)  # warm
+    print(json.dumps({"rate": naive(paths, embedder)}))
+
+
 def kinscope(paths: list[str], work: Path, cache: Path, batch_size: int, workers: int | None) -> dict:
     """`kinscope index` in a fresh process on a fresh database (the ONNX model exported beforehand)."""
     import json
@@ -181,7 +214,10 @@ def main() -> None:
     ap.add_argument("--workers", type=int, default=None, help="decode workers (default: one per core)")
     ap.add_argument("--repeat", type=int, default=3, help="rounds; each figure is the best round")
     ap.add_argument("--work", default=os.path.join(tempfile.gettempdir(), "kinscope-bench"))
+    ap.add_argument("--naive-of", help=argparse.SUPPRESS)  # internal: the naive pipeline on a list of paths
     args = ap.parse_args()
+    if args.naive_of:
+        return naive_main(args.naive_of)
 
     from index.backbones import get_backbone
     from index.embed import Embedder
@@ -229,7 +265,7 @@ def main() -> None:
         for name, paths in sets.items():
             configure_threads(n_cores)
             with Others() as o:
-                r = naive(paths[:args.naive], torch_embedder)
+                r = naive_in_fresh_process(paths[:args.naive], work)
             keep((name, "naive"), r, o.share)
             with Others() as o:
                 k = kinscope(paths, work, cache, args.batch_size, args.workers)
