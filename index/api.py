@@ -22,7 +22,7 @@ from .explain import descriptor, explain_pair, patch_box
 from .layers import PRESET_HINTS, listing, resolve_layers
 from .pipeline import Job, run
 from .pooling import PCAWhitening
-from .scan import diff, normalize_roots, walk
+from .scan import diff_by_folder, normalize_roots, walk, walk_roots
 from .search import nearest, row_filter
 from .store import VectorStore
 from .vector_index import IndexPolicy
@@ -263,7 +263,9 @@ class Archive:
         self.reconcile()
         run_id = self.catalog.start_run(roots)
         errors: list[dict] = []
-        cs = diff(walk(roots, errors), self.catalog.rows_under(roots), self.catalog.failures_under(roots))
+        # Folder by folder: the catalog rows of one folder in memory at a time, not the archive's.
+        cs = diff_by_folder(walk(walk_roots(roots), errors), self.catalog.rows_in_folder,
+                            self.catalog.folders_under(roots), roots, self.catalog.failures_under(roots))
         gone = np.array(cs.removed + [i for i, _ in cs.changed], np.int64)
         removed = sum(self.store(layer).remove(gone) for layer in self.layer_names) if len(gone) else 0
         self.catalog.delete_images(cs.removed)

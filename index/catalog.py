@@ -78,15 +78,20 @@ class Catalog:
         self.db["runs"].update(run_id, {"finished_at": now(), "status": status, **counts})
 
     # --- images -----------------------------------------------------------------------------
-    def rows_under(self, roots: Iterable[str]) -> dict[str, dict]:
-        """path -> row for every image row below any of these folders (or equal to a root file)."""
-        rows = {}
+    def folders_under(self, roots: Iterable[str]) -> set[str]:
+        """The folders of every image row below any of these folders (or equal to a root file)."""
+        out = set()
         for root in roots:
             prefix = root.rstrip(os.sep) + os.sep
-            query = "select id, path, size, mtime, sha256, status from images where path = ? or substr(path, 1, ?) = ?"
-            for row in self.db.query(query, [root, len(prefix), prefix]):
-                rows[row["path"]] = row
-        return rows
+            query = ("select distinct folder from images where folder = ? or substr(folder, 1, ?) = ? "
+                     "or path = ?")
+            out.update(r[0] for r in self.db.execute(query, [root, len(prefix), prefix, root]).fetchall())
+        return out
+
+    def rows_in_folder(self, folder: str) -> dict[str, dict]:
+        """path -> row for the image rows directly in this folder."""
+        query = "select id, path, size, mtime, sha256, status from images where folder = ?"
+        return {row["path"]: row for row in self.db.query(query, [folder])}
 
     def insert_pending(self, files: list[dict], run_id: int) -> list[int]:
         """New files -> pending rows; returns their ids (the FAISS ids in every layer)."""
