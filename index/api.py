@@ -20,7 +20,7 @@ from . import media
 from .exemplars import Exemplars
 from .explain import descriptor, explain_pair, patch_box
 from .layers import PRESET_HINTS, listing, resolve_layers
-from .pipeline import Job, run
+from .pipeline import Job, configure_threads, cores, run
 from .pooling import PCAWhitening
 from .scan import diff_by_folder, normalize_roots, walk, walk_roots
 from .search import nearest, row_filter
@@ -35,13 +35,6 @@ DEFAULT_WHITEN_MIN_IMAGES = 1000
 
 class ArchiveError(Exception):
     """Anything the user must fix: a plain sentence, never a stack trace."""
-
-
-def _threads() -> None:
-    # One process: torch's intra-op pool gets the cores, FAISS the same; large buffers are reused.
-    from .pipeline import configure_threads, cores
-
-    configure_threads(cores())
 
 
 class Archive:
@@ -178,7 +171,7 @@ class Archive:
             from .embed import Embedder
             from .layers import Layer
 
-            _threads()
+            configure_threads(cores())  # torch and FAISS get the cores; large buffers are reused
             model = self.backbone.load()
             layers = [Layer(l["name"], l["node"], l["channels"], l["stride"]) for l in self.manifest["layers"]]
             # Queries use ONNX Runtime only when its model is already cached (readers never write).
@@ -267,7 +260,7 @@ class Archive:
         cs = diff_by_folder(walk(walk_roots(roots), errors), self.catalog.rows_in_folder,
                             self.catalog.folders_under(roots), roots, self.catalog.failures_under(roots))
         gone = np.array(cs.removed + [i for i, _ in cs.changed], np.int64)
-        removed = sum(self.store(layer).remove(gone) for layer in self.layer_names) if len(gone) else 0
+        removed = sum(self.store(layer).remove(gone) for layer in self.layer_names)
         self.catalog.delete_images(cs.removed)
         self.catalog.update_files(
             [(i, {"size": f["size"], "mtime": f["mtime"]}) for i, f in cs.touched]

@@ -35,7 +35,7 @@ def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray]
             n, c, h, w = fmap.shape
             flat = fmap.contiguous().reshape(n, c, h * w)
             values, where = flat.max(dim=2)
-            peaks[name] = (values.numpy().copy(), where.numpy().astype(np.int64), (h, w))
+            peaks[name] = (values.numpy(), where.numpy().astype(np.int64), (h, w))
             x = flat.clamp_min_(GEM_EPS)
             if p == 1:
                 pooled = x.mean(dim=2)

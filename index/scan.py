@@ -52,10 +52,14 @@ def walk_roots(roots: list[str]) -> list[str]:
     """The roots to walk so that each folder comes once: duplicates and roots inside another root
     dropped, file roots grouped by their folder."""
     unique = list(dict.fromkeys(roots))
-    kept = [r for r in unique if not any(o != r and _under(r, [o]) for o in unique if not os.path.isfile(o))]
-    folders = [r for r in kept if not os.path.isfile(r)]
-    files = sorted((r for r in kept if os.path.isfile(r)), key=lambda r: (os.path.dirname(r), r))
-    return folders + files
+    files = {r for r in unique if os.path.isfile(r)}
+    folders = [r for r in unique if r not in files]
+
+    def inside(r: str) -> bool:  # strictly inside another folder root
+        return any(o != r and r.startswith(o.rstrip(os.sep) + os.sep) for o in folders)
+
+    return ([r for r in folders if not inside(r)]
+            + sorted((r for r in files if not inside(r)), key=lambda r: (os.path.dirname(r), r)))
 
 
 def walk(roots: list[str], errors: list[dict]) -> Iterator[dict]:
@@ -107,8 +111,9 @@ def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[s
     unknown, missing = [], []
     seen_failures = set()
     visited = set()
+    under = below(roots)
     for folder, group in groupby(files, key=lambda f: os.path.dirname(f["path"])):
-        rows = {p: r for p, r in rows_in_folder(folder).items() if _under(p, roots)}
+        rows = {p: r for p, r in rows_in_folder(folder).items() if under(p)}
         first = folder not in visited  # (a folder comes twice only from overlapping roots: see walk_roots)
         visited.add(folder)
         seen = set()
@@ -120,14 +125,17 @@ def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[s
         if first:
             missing.extend(row for path, row in rows.items() if path not in seen)
     for folder in sorted(folders - visited):  # folders the catalog knows and the walk did not reach
-        missing.extend(r for p, r in rows_in_folder(folder).items() if _under(p, roots))
+        missing.extend(r for p, r in rows_in_folder(folder).items() if under(p))
     _match_moves(unknown, missing, cs)
     cs.gone_failures = [p for p in failures if p not in seen_failures]
     return cs
 
 
-def _under(path: str, roots: list[str]) -> bool:
-    return any(path == root or path.startswith(root.rstrip(os.sep) + os.sep) for root in roots)
+def below(roots: list[str]) -> Callable[[str], bool]:
+    """A test for "this path is one of the roots or inside one of them" (prefixes built once)."""
+    exact = set(roots)
+    prefixes = tuple(r.rstrip(os.sep) + os.sep for r in roots)
+    return lambda path: path in exact or path.startswith(prefixes)
 
 
 def _compare(f: dict, row: dict | None, failures: dict[str, dict], cs: ChangeSet, unknown: list[dict]) -> None:
