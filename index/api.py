@@ -24,13 +24,16 @@ from .pipeline import Job, configure_threads, cores, run
 from .pooling import PCAWhitening
 from .scan import diff_by_folder, normalize_roots, walk, walk_roots
 from .search import nearest, row_filter
+from .layer_store import LayerStore
+from .segments import StoreFileError, assemble
 from .store import VectorStore
-from .vector_index import IndexPolicy
+from .vector_index import IndexPolicy, bytes_per_vector_of
 
 DEFAULT_GEM_P = 3.0
 DEFAULT_FILE_TIMEOUT = 120.0  # seconds one file may take to read and decode before it is abandoned
 WRITE_ERRNOS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EPERM, errno.EDQUOT, errno.EFBIG}
 DEFAULT_WHITEN_MIN_IMAGES = 1000
+WHITEN_SAMPLE = 20_000  # descriptors the whitening is fitted on (at most)
 
 
 class ArchiveError(Exception):
@@ -46,7 +49,8 @@ class Archive:
         self.catalog = Catalog(self.db / "catalog.sqlite")
         self._backbone: Backbone | None = None
         self._embedder = None
-        self._stores: dict[str, VectorStore] = {}
+        self._stores: dict[str, VectorStore] = {}  # readers: every segment in one FAISS index
+        self._writers: dict[str, LayerStore] = {}  # the indexer: appends in bounded memory
         self._whitening: dict[str, PCAWhitening] = {}
         self._exemplars: dict[str, Exemplars] = {}
 
@@ -119,6 +123,7 @@ class Archive:
             "pooling": {"method": "GeM", "p": p, "normalisation": "L2"},
             "whitening": {"enabled": bool(whiten), "min_images": DEFAULT_WHITEN_MIN_IMAGES, "learned": {}},
             "generation": 0,
+            "stores": {},
             "versions": mf.versions(),
         }
 
@@ -182,15 +187,56 @@ class Archive:
         return self._embedder
 
     def store(self, layer: str) -> VectorStore:
+        """The layer's vectors as one in-memory FAISS index, as of the last committed checkpoint (for
+        searching; the indexer writes through `_writer`)."""
         if layer not in self._stores:
-            entry = self._layer(layer)
-            path = self.db / entry["file"]
-            # Index type by size (index.vector_index); what was measured when it was built is in the manifest.
-            policy = IndexPolicy.from_dict(self.manifest.get("vector_index"))
-            measured = self.manifest.get("indexes", {}).get(layer)
-            self._stores[layer] = (VectorStore.load(path, policy=policy, measured=measured) if path.exists()
-                                   else VectorStore(entry["dim"], policy=policy))
+            self._stores[layer] = self._load_store(layer)
         return self._stores[layer]
+
+    def _load_store(self, layer: str, attempts: int = 5) -> VectorStore:
+        for attempt in range(attempts):
+            entry = self._layer(layer)
+            state = self.manifest.get("stores", {}).get(entry["name"])
+            try:
+                if state:
+                    return VectorStore(int(state["dim"]), assemble(self.db, state), measured=state.get("measured"))
+                legacy = self.db / entry["file"]  # a store from before segments: one FAISS file
+                if legacy.exists():
+                    return VectorStore.load(legacy, measured=self.manifest.get("indexes", {}).get(layer))
+                return VectorStore(entry["dim"])
+            except FileNotFoundError:
+                # An indexer committed a newer state and removed files of the one read: read it again.
+                if attempt + 1 == attempts or not self._reread_manifest():
+                    raise ArchiveError(f"the vector store of layer {layer} names files that are missing; "
+                                       "run `kinscope check`") from None
+            except StoreFileError as exc:
+                raise ArchiveError(f"{exc}; run `kinscope check`") from None
+        raise AssertionError("unreachable")
+
+    def _reread_manifest(self) -> bool:
+        try:
+            current = mf.read(self.db)
+        except ValueError:
+            return False
+        changed = bool(current) and current.get("generation") != self.manifest.get("generation")
+        if changed:
+            self.manifest = current
+        return changed
+
+    def _writer(self, layer: str) -> LayerStore:
+        """The indexer's handle on a layer's store (only under the writer lock)."""
+        if layer not in self._writers:
+            entry = self._layer(layer)
+            state = self.manifest.get("stores", {}).get(entry["name"])
+            legacy = self.db / entry["file"]
+            try:
+                self._writers[layer] = LayerStore(
+                    self.db, entry["name"], entry["dim"], state,
+                    policy=IndexPolicy.from_dict(self.manifest.get("vector_index")),
+                    legacy=legacy if not state and legacy.exists() else None)
+            except StoreFileError as exc:
+                raise ArchiveError(f"{exc}; run `kinscope check --repair`") from None
+        return self._writers[layer]
 
     def exemplars(self, layer: str) -> Exemplars:
         """Per channel, the archive positions that excite it most (collected while indexing)."""
@@ -253,6 +299,8 @@ class Archive:
 
     def _add(self, roots: list[str], progress: bool, batch_size: int, checkpoint_every: int = 512,
              engine: str | None = None, workers: int | None = None, file_timeout: float | None = None) -> dict:
+        for layer in self.layer_names:  # files an interrupted run wrote but never committed
+            self._writer(layer).remove_leftovers()
         self.reconcile()
         run_id = self.catalog.start_run(roots)
         errors: list[dict] = []
@@ -260,7 +308,7 @@ class Archive:
         cs = diff_by_folder(walk(walk_roots(roots), errors), self.catalog.rows_in_folder,
                             self.catalog.folders_under(roots), roots, self.catalog.failures_under(roots))
         gone = np.array(cs.removed + [i for i, _ in cs.changed], np.int64)
-        removed = sum(self.store(layer).remove(gone) for layer in self.layer_names)
+        removed = sum(self._writer(layer).remove(gone) for layer in self.layer_names)
         self.catalog.delete_images(cs.removed)
         self.catalog.update_files(
             [(i, {"size": f["size"], "mtime": f["mtime"]}) for i, f in cs.touched]
@@ -270,7 +318,7 @@ class Archive:
         self.catalog.clear_failures(cs.gone_failures + [f["path"] for f in cs.new])
         self.catalog.record_failures([{**e, "size": None, "mtime": None} for e in errors], run_id)
         self.catalog.insert_pending(cs.new, run_id)
-        if removed or not all((self.db / self._layer(layer)["file"]).exists() for layer in self.layer_names):
+        if removed or not all(layer in self.manifest.get("stores", {}) for layer in self.layer_names):
             self._save_stores()  # removals are durable before any new work starts
         jobs = [Job(i, p) for i, p in self.catalog.pending(roots)]
 
@@ -279,7 +327,7 @@ class Archive:
         def on_batch(ids, descriptors, rows, peaks):
             for layer, vectors in descriptors.items():
                 w = self.whitening(layer)
-                self.store(layer).add(ids, w.transform(vectors) if w else vectors)
+                self._writer(layer).add(ids, w.transform(vectors) if w else vectors)
                 self.exemplars(layer).update(ids, *peaks[layer])
             done_rows.extend(rows)
 
@@ -288,7 +336,7 @@ class Archive:
                 return
             ids = [f["job"].id for f in failures]
             for layer in self.layer_names:
-                self.store(layer).remove(np.array(ids, np.int64))
+                self._writer(layer).remove(np.array(ids, np.int64))
             self.catalog.delete_images(ids)
             self.catalog.record_failures(
                 [{"path": f["job"].path, "size": f.get("size"), "mtime": f.get("mtime"), "reason": f["error"]}
@@ -354,13 +402,19 @@ class Archive:
                 "engine": counts.engine, "seconds": round(counts.seconds, 3)}
 
     def _save_stores(self) -> None:
-        for layer in self.layer_names:
-            entry = self._layer(layer)
-            self.store(layer).save(self.db / entry["file"])
+        """Checkpoint: every layer's changes written to new files, then the manifest naming them (the
+        commit), then the files it no longer names removed."""
+        writers = [self._writer(layer) for layer in self.layer_names]
+        states = {w.layer: w.flush() for w in writers}
+        self.manifest["format"] = mf.FORMAT
+        self.manifest.setdefault("stores", {}).update(states)
         self.manifest["generation"] += 1
-        self.manifest["counts"] = {layer: len(self.store(layer)) for layer in self.layer_names}
-        self.manifest["indexes"] = {layer: self.store(layer).describe() for layer in self.layer_names}
+        self.manifest["counts"] = {w.layer: len(w) for w in writers}
+        self.manifest["indexes"] = {w.layer: w.describe() for w in writers}
         mf.write(self.db, self.manifest)
+        for w in writers:
+            w.committed()
+        self._stores.clear()  # loaded for searching before this checkpoint: stale now
 
     def _writer_lock(self):
         archive = self
@@ -391,9 +445,9 @@ class Archive:
         ok = np.array(self.catalog.ids_with_status("ok"), np.int64)
         dropped, missing = 0, set()
         for layer in self.layer_names:
-            stored = self.store(layer).ids()
+            stored = self._writer(layer).ids()
             extra = np.setdiff1d(stored, ok)
-            dropped += self.store(layer).remove(extra)
+            dropped += self._writer(layer).remove(extra)
             missing.update(np.setdiff1d(ok, stored).tolist())
         if missing:
             self.catalog.set_status(sorted(missing), "pending")  # they are embedded again by the next add
@@ -408,17 +462,16 @@ class Archive:
         ids = np.array(self.catalog.ids_with_status("ok"), np.int64)
         if len(ids) < w["min_images"]:
             return
+        rng = np.random.default_rng(0)
+        sample = np.sort(rng.choice(ids, min(len(ids), WHITEN_SAMPLE), replace=False))
         for layer in self.layer_names:
-            store = self.store(layer)
-            raw = store.reconstruct(ids)
-            pca = PCAWhitening().fit(raw)
+            writer = self._writer(layer)
+            pca = PCAWhitening().fit(writer.reconstruct(sample))
             file = f"whitening-{self._layer(layer)['file'].removesuffix('.faiss')}.npz"
             pca.save(self.db / file)
-            fresh = VectorStore(pca.out_dim, policy=IndexPolicy.from_dict(self.manifest.get("vector_index")))
-            fresh.add(ids, pca.transform(raw))
-            self._stores[layer] = fresh
+            writer.rebuild(transform=pca.transform, dim=pca.out_dim)  # every stored vector, segment by segment
             self._whitening[layer] = pca
-            w["learned"][layer] = {"file": file, "dim": pca.out_dim, "n": len(ids)}
+            w["learned"][layer] = {"file": file, "dim": pca.out_dim, "n": len(sample)}
             self._layer(layer)["dim"] = pca.out_dim
         self._save_stores()
 
@@ -580,12 +633,12 @@ class Archive:
     def info(self) -> dict:
         summary = self.catalog.summary()
         m = self.manifest
-        layers = [
-            {**{k: l[k] for k in ("name", "node", "channels", "stride", "dim")}, "vectors": len(self.store(l["name"])),
-             "hint": PRESET_HINTS.get(l["name"], ""), "index": self.store(l["name"]).describe(),
-             "bytes_per_vector": self.store(l["name"]).bytes_per_vector()}
-            for l in m["layers"]
-        ]
+        layers = []
+        for l in m["layers"]:
+            index = self._index_info(l["name"])
+            layers.append({**{k: l[k] for k in ("name", "node", "channels", "stride", "dim")},
+                           "vectors": index["vectors"], "hint": PRESET_HINTS.get(l["name"], ""), "index": index,
+                           "bytes_per_vector": bytes_per_vector_of(index)})
         return {
             "db": str(self.db),
             "backbone": {k: m["backbone"][k] for k in ("name", "family", "weights_source", "weights_sha256")},
@@ -596,6 +649,13 @@ class Archive:
             "index_bytes_per_image": sum(l["bytes_per_vector"] for l in layers),
             **summary,
         }
+
+    def _index_info(self, layer: str) -> dict:
+        """Type, size and build measurements of a layer's index, from the manifest (nothing loaded)."""
+        recorded = self.manifest.get("indexes", {}).get(layer)
+        if recorded and "stores" in self.manifest:
+            return recorded
+        return self.store(layer).describe()  # an archive from before segments, or never checkpointed
 
     @staticmethod
     def available_layers(backbone: str = DEFAULT_BACKBONE, weights: str | None = None) -> dict:

@@ -8,7 +8,7 @@ from pathlib import Path
 
 from .store import atomic_write
 
-FORMAT = 1
+FORMAT = 2  # 2: stores as codec + segments (index.segments); 1: one FAISS file per layer
 FILE = "manifest.json"
 
 

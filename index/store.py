@@ -1,9 +1,9 @@
-"""One FAISS index per layer, keyed by catalog id, persisted atomically.
+"""A layer's vectors as one in-memory FAISS index keyed by catalog id (what searches use), and
+atomic file writes.
 
-The index type follows the store's size (index.vector_index): exact inner-product search (flat) while
-small, then IVF with 8-bit scalar quantization, trained on a sample of the stored vectors, its probe
-count set by measuring recall@10 against exact search. Both keep ids removable, which incremental
-re-indexing and Archive.reconcile() need. Scores are inner products of L2-normalised vectors
+The index is exact inner-product search (flat) or IVF with 8-bit scalar quantization (see
+index.vector_index); index.layer_store chooses and builds it, segment by segment on disk, and
+index.segments assembles it for readers. Scores are inner products of L2-normalised vectors
 (cosine similarities; with SQ8 codes to about 1e-3).
 """
 from __future__ import annotations
@@ -17,7 +17,6 @@ import faiss
 import numpy as np
 
 from . import vector_index as vi
-from .vector_index import IndexPolicy
 
 
 def atomic_write(path: Path, data: bytes | Callable[[BinaryIO], None]) -> None:
@@ -48,16 +47,15 @@ def atomic_write(path: Path, data: bytes | Callable[[BinaryIO], None]) -> None:
 
 
 class VectorStore:
-    """Nearest neighbours by inner product over L2-normalised descriptors (inner product = cosine)."""
+    """An in-memory FAISS index over L2-normalised descriptors (inner product = cosine), keyed by
+    catalog id: what readers search. Its type is what it was built as (index.layer_store builds and
+    changes the stored index; this class never does)."""
 
-    def __init__(self, dim: int, index: faiss.Index | None = None, *, policy: IndexPolicy | None = None,
-                 measured: dict | None = None):
+    def __init__(self, dim: int, index: faiss.Index | None = None, *, measured: dict | None = None):
         self.dim = dim
-        self.policy = policy or IndexPolicy()
         self.index = index if index is not None else vi.flat(dim)
-        self.measured = dict(measured or {})  # how the current index was built and how well it recalls
+        self.measured = dict(measured or {})  # how the index was built and how well it recalls
         assert self.index.d == dim, f"index dimension {self.index.d} != {dim}"
-        self._max_id: int | None = None
 
     @property
     def kind(self) -> str:
@@ -69,36 +67,23 @@ class VectorStore:
     def ids(self) -> np.ndarray:
         return vi.stored_ids(self.index)
 
-    def _largest_id(self) -> int:
-        if self._max_id is None:
-            ids = self.ids()
-            self._max_id = int(ids.max()) if len(ids) else -1
-        return self._max_id
-
     def add(self, ids: np.ndarray, vectors: np.ndarray) -> None:
-        """Insert or replace the vectors of these ids; the index type follows the new size."""
+        """Insert or replace the vectors of these ids."""
         n, d = vectors.shape
         assert d == self.dim, f"expected vectors of dimension {self.dim}, got {d}"
         assert ids.shape == (n,), f"expected {n} ids, got shape {ids.shape}"
         ids = np.ascontiguousarray(ids, dtype=np.int64)
         if n == 0:
             return
-        if len(self) and int(ids.min()) <= self._largest_id():
-            self.remove(ids)  # a replacement; fresh catalog ids (above every stored one) skip the scan
+        if len(self):
+            self.remove(ids)  # a replacement keeps one vector per id
         self.index.add_with_ids(np.ascontiguousarray(vectors, dtype=np.float32), ids)
-        if self._max_id is not None:
-            self._max_id = max(self._max_id, int(ids.max()))
-        self.maintain()
 
     def remove(self, ids: np.ndarray) -> int:
         ids = np.ascontiguousarray(ids, dtype=np.int64)
         if len(ids) == 0 or len(self) == 0:
             return 0
-        removed = vi.remove(self.index, ids)
-        if removed:
-            self._max_id = None
-            self.maintain()
-        return removed
+        return vi.remove(self.index, ids)
 
     def reconstruct(self, ids: np.ndarray) -> np.ndarray:
         """The stored vectors of these ids (decoded from 8-bit codes for IVF: about 1e-3 off)."""
@@ -119,21 +104,6 @@ class VectorStore:
             return np.zeros((nq, 0), np.float32), np.zeros((nq, 0), np.int64)
         return self.index.search(np.ascontiguousarray(queries, dtype=np.float32), k)
 
-    # --- index type -----------------------------------------------------------------------------
-    def maintain(self) -> bool:
-        """Rebuild when the size calls for another index (flat -> IVF, or IVF grown past its lists)."""
-        wanted = vi.wanted(self.index, self.policy)
-        if wanted is None:
-            return False
-        self.rebuild(wanted)
-        return True
-
-    def rebuild(self, kind: str | None = None) -> None:
-        """Build the index `kind` (default: what the policy wants now) from the stored vectors."""
-        kind = kind or vi.wanted(self.index, self.policy) or self.kind
-        self.index, self.measured = vi.rebuild(self.index, kind, self.policy)
-        self._max_id = None
-
     def describe(self) -> dict:
         """Type and parameters (recorded in the manifest), with the recall measured when it was built."""
         return {**vi.describe(self.index), **self.measured}
@@ -148,9 +118,10 @@ class VectorStore:
         atomic_write(Path(path), lambda fh: faiss.write_index(index, faiss.PyCallbackIOWriter(fh.write)))
 
     @classmethod
-    def load(cls, path: Path, *, policy: IndexPolicy | None = None, measured: dict | None = None) -> "VectorStore":
+    def load(cls, path: Path, *, measured: dict | None = None) -> "VectorStore":
+        """A store saved as one FAISS file (archives from before segments, and tests)."""
         index = faiss.read_index(str(path))
         info = vi.describe(index)
         # What was measured at build time is kept only if it describes this very index.
         keep = measured if measured and all(measured.get(k, v) == v for k, v in info.items() if k != "vectors") else None
-        return cls(index.d, index, policy=policy, measured={k: v for k, v in (keep or {}).items() if k not in info})
+        return cls(index.d, index, measured={k: v for k, v in (keep or {}).items() if k not in info})

@@ -1,4 +1,4 @@
-"""The FAISS index types a VectorStore can hold, when each is used, and how an IVF index is built.
+"""The FAISS index types a layer's store can hold, when each is used, and their parameters.
 
 - flat: IndexIDMap2(IndexFlatIP), exact. Used while vectors x dimensions stays within
   `IndexPolicy.flat_work` (a query then takes a few milliseconds on one core), or below `flat_max`.
@@ -6,8 +6,9 @@
   quantization per dimension, not of residuals, so retraining the lists never re-quantizes), trained
   by spherical k-means on a sample of the stored vectors, optionally behind a PCA projection (then
   re-normalised; scores are cosines of the projected vectors). A hash-table direct map keeps ids
-  removable and vectors reconstructible. `nprobe` is the smallest power of two whose recall@10,
-  measured against exact search on stored vectors used as queries, reaches the policy's target.
+  removable and vectors reconstructible. `nprobe` is the smallest step whose recall@10, measured
+  against exact search with stored vectors as queries, reaches the policy's target.
+index.store_build builds them (segment by segment); this module holds the types and the policy.
 
 HNSW is not offered for stores: it cannot remove ids, which incremental re-indexing needs.
 """
@@ -22,7 +23,6 @@ import numpy as np
 FLAT = "flat"
 IVF = "ivf-sq8"
 KINDS = (FLAT, IVF)
-CHUNK = 65_536
 # Per stored vector, beside its codes: the 8-byte id in the list or id map, and the id -> position
 # hash table (std::unordered_map: node and bucket, about 40 bytes; bench_search measures the total).
 ID_BYTES = 8
@@ -79,14 +79,18 @@ def lists_for(n: int, policy: IndexPolicy) -> int:
 
 def wanted(index: faiss.Index, policy: IndexPolicy) -> str | None:
     """The kind the index should be rebuilt into at its current size, or None to keep it."""
-    n = int(index.ntotal)
     ivf = _ivf(index)
-    limit = policy.flat_limit(int(index.d))
-    if ivf is None:
+    return wanted_kind(kind_of(index), int(index.ntotal), int(index.d), 0 if ivf is None else int(ivf.nlist), policy)
+
+
+def wanted_kind(kind: str, n: int, dim: int, nlist: int, policy: IndexPolicy) -> str | None:
+    """The kind a store of `kind` (with `nlist` lists if IVF) should become at n vectors, or None."""
+    limit = policy.flat_limit(dim)
+    if kind == FLAT:
         return IVF if n >= limit else None
     if n < limit // 2:  # shrunk well below the threshold (hysteresis: no flapping)
         return FLAT
-    return IVF if lists_for(n, policy) >= 2 * ivf.nlist else None
+    return IVF if lists_for(n, policy) >= 2 * nlist else None
 
 
 def stored_ids(index: faiss.Index) -> np.ndarray:
@@ -122,8 +126,13 @@ def describe(index: faiss.Index) -> dict:
 
 
 def bytes_per_vector(index: faiss.Index) -> float:
-    ivf = _ivf(index)
-    code = 4 * index.d if ivf is None else ivf.code_size
+    return bytes_per_vector_of(describe(index))
+
+
+def bytes_per_vector_of(info: dict) -> float:
+    """Memory a searching process holds per stored vector: codes, id, id lookup (an estimate; see
+    bench_search), from a `describe` dict."""
+    code = 4 * info["dim"] if info["type"] == FLAT else info["code_bytes"]
     return float(code + ID_BYTES + LOOKUP_BYTES)
 
 
@@ -146,33 +155,6 @@ def new_ivf(dim: int, nlist: int, policy: IndexPolicy) -> faiss.Index:
     return index
 
 
-def _chunks(ids: np.ndarray):
-    for start in range(0, len(ids), CHUNK):
-        yield ids[start:start + CHUNK]
-
-
-def exact_neighbours(index: faiss.Index, ids: np.ndarray, queries: np.ndarray, k: int) -> np.ndarray:
-    """Ids of the k best inner products over every stored vector (brute force, chunk by chunk)."""
-    if _ivf(index) is None:
-        return index.search(queries, k)[1]
-    heap = faiss.ResultHeap(len(queries), k, keep_max=True)
-    for chunk in _chunks(ids):
-        scores = queries @ reconstruct(index, chunk).T
-        heap.add_result(np.ascontiguousarray(scores, np.float32), np.broadcast_to(chunk, scores.shape).copy())
-    heap.finalize()
-    return heap.I
-
-
-def recall_at_10(found: np.ndarray, truth: np.ndarray, left_out: set[int]) -> float:
-    """Share of the true 10 nearest that were found in the first 10 (ids in `left_out` ignored)."""
-    hits = []
-    for f, t in zip(found, truth):
-        t = [i for i in t if i >= 0 and i not in left_out][:10]
-        f = [i for i in f if i >= 0 and i not in left_out][:10]
-        hits.append(len(set(f) & set(t)) / max(1, len(t)))
-    return float(np.mean(hits)) if hits else 1.0
-
-
 def probe_steps(nlist: int):
     """1, 2, 3, 4, 6, 8, 12, ...: powers of two and the midpoints, up to nlist / 4."""
     step, top = 1, max(1, nlist // 4)
@@ -181,50 +163,3 @@ def probe_steps(nlist: int):
         if step >= 2 and step + step // 2 <= top:
             yield step + step // 2
         step *= 2
-
-
-def calibrate(index: faiss.Index, queries: np.ndarray, truth: np.ndarray, left_out: set[int],
-              target: float) -> tuple[int, float]:
-    """The smallest nprobe reaching `target` recall@10; where the target is out of reach, the one
-    after which more probes stop paying (gain below 0.002). Returns nprobe and its recall."""
-    ivf = _ivf(index)
-    best = (1, -1.0)
-    for nprobe in probe_steps(ivf.nlist):
-        ivf.nprobe = nprobe
-        recall = recall_at_10(index.search(queries, 10)[1], truth, left_out)
-        if recall >= target:
-            return nprobe, recall
-        if recall < best[1] + 0.002:
-            break
-        best = (nprobe, recall)
-    ivf.nprobe = best[0]
-    return best
-
-
-def rebuild(old: faiss.Index, kind: str, policy: IndexPolicy) -> tuple[faiss.Index, dict]:
-    """A new index of `kind` holding every vector of `old`, and what was measured while building it."""
-    ids = stored_ids(old)
-    n, d = len(ids), int(old.d)
-    if kind == FLAT:
-        new = flat(d)
-        for chunk in _chunks(ids):
-            new.add_with_ids(reconstruct(old, chunk), chunk)
-        return new, {"built_for": n}
-    rng = np.random.default_rng(policy.seed)
-    nlist = lists_for(n, policy)
-    sample = reconstruct(old, np.sort(rng.choice(ids, min(n, nlist * policy.train_per_list), replace=False)))
-    new = new_ivf(d, nlist, policy)
-    new.train(sample)
-    _ivf(new).set_direct_map_type(faiss.DirectMap.Hashtable)
-    for chunk in _chunks(ids):
-        new.add_with_ids(reconstruct(old, chunk), chunk)
-    # Recall on held-out queries: stored vectors taken out of the new index while it is measured (a
-    # stored vector would sit in its own list, which flatters the figure), then put back.
-    probe = np.sort(rng.choice(ids, min(n, policy.probe_queries), replace=False))
-    queries = reconstruct(old, probe)  # what was added for them
-    truth = exact_neighbours(old, ids, queries, 10 + len(probe))
-    remove(new, probe)
-    nprobe, recall = calibrate(new, queries, truth, set(probe.tolist()), policy.target_recall + policy.recall_margin)
-    new.add_with_ids(queries, probe)
-    return new, {"built_for": n, "trained_on": len(sample), "recall_at_10": round(recall, 4),
-                 "recall_queries": len(probe), "recall_target": policy.target_recall}

@@ -44,7 +44,7 @@ def test_check_finds_orphans_gaps_and_temp_files_and_repair_fixes_them(tmp_path)
     imgs = _folder(tmp_path / "imgs", 6)
     archive = Archive.open(tmp_path / "db", create=True, layers=["colour", "objects"])
     archive.add([imgs], progress=False)
-    store = archive.store("objects")
+    store = archive._writer("objects")
     store.add(np.array([777]), store.reconstruct(np.array([2])))  # an orphan descriptor
     store.remove(np.array([4]))  # an indexed image without one
     archive._save_stores()
@@ -62,15 +62,35 @@ def test_check_finds_orphans_gaps_and_temp_files_and_repair_fixes_them(tmp_path)
     assert all(ids == ok for ids in stores.values()) and len(ok) == 6
 
 
-def test_an_unreadable_store_is_set_aside_and_rebuilt(tmp_path):
+def test_an_unreadable_segment_is_set_aside_and_its_images_embedded_again(tmp_path):
     imgs = _folder(tmp_path / "imgs", 4)
     Archive.open(tmp_path / "db", create=True, layers=["colour"]).add([imgs], progress=False)
-    (tmp_path / "db" / "vectors-colour.faiss").write_bytes(b"\0" * 100)
+    segment = Archive.open(tmp_path / "db").manifest["stores"]["colour"]["segments"][0]["file"]
+    (tmp_path / "db" / segment).write_bytes(b"\0" * 100)
+    report = Archive.open(tmp_path / "db").check()
+    assert not report["ok"] and "is missing or unreadable" in report["findings"][0]["message"]
+    repaired = Archive.open(tmp_path / "db").repair(progress=False)
+    assert repaired["reembedded"] == 4 and repaired["set_aside"] == [segment + ".unreadable"]
+    assert (tmp_path / "db" / (segment + ".unreadable")).exists()  # nothing is deleted
+    assert Archive.open(tmp_path / "db").check()["ok"]
+
+
+def test_an_unreadable_trained_index_sets_the_layer_aside_and_rebuilds_it(tmp_path):
+    imgs = _folder(tmp_path / "imgs", 12)
+    archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
+    archive.manifest["vector_index"] = {"flat_max": 8, "train_per_list": 2}  # IVF from 8 images (a test size)
+    archive.add([imgs], progress=False)
+    state = Archive.open(tmp_path / "db").manifest["stores"]["colour"]
+    assert state["kind"] == "ivf-sq8" and state["codec"]
+    (tmp_path / "db" / state["codec"]).write_bytes(b"\0" * 100)
     assert not Archive.open(tmp_path / "db").check()["ok"]
     repaired = Archive.open(tmp_path / "db").repair(progress=False)
-    assert repaired["reembedded"] == 4 and repaired["set_aside"] == ["vectors-colour.faiss.unreadable"]
-    assert (tmp_path / "db" / "vectors-colour.faiss.unreadable").exists()  # nothing is deleted
-    assert Archive.open(tmp_path / "db").check()["ok"]
+    assert repaired["reembedded"] == 12
+    assert sorted(repaired["set_aside"]) == sorted(f + ".unreadable" for f in
+                                                   [state["codec"]] + [s["file"] for s in state["segments"]])
+    archive, report, ok, stores = _agrees(tmp_path / "db")
+    assert report["ok"], report["findings"]
+    assert stores["colour"] == ok and len(ok) == 12
 
 
 def test_check_command_exit_codes(tmp_path):
@@ -83,7 +103,7 @@ def test_check_command_exit_codes(tmp_path):
     out = runner.invoke(main, ["check", "--db", str(tmp_path / "db")])
     assert out.exit_code == 0 and "everything agrees" in out.output
     archive = Archive.open(tmp_path / "db")
-    archive.store("colour").remove(np.array([1]))
+    archive._writer("colour").remove(np.array([1]))
     archive._save_stores()
     out = runner.invoke(main, ["check", "--db", str(tmp_path / "db")])
     assert out.exit_code == 1 and "no descriptor" in out.output
@@ -155,6 +175,7 @@ def test_a_full_disk_mid_run_gives_a_clear_error_and_leaves_whole_files(tmp_path
     import errno
 
     import index.manifest
+    import index.segments
     import index.store
     from index.api import ArchiveError
 
@@ -171,10 +192,11 @@ def test_a_full_disk_mid_run_gives_a_clear_error_and_leaves_whole_files(tmp_path
 
     monkeypatch.setattr(index.store, "atomic_write", filling_disk)
     monkeypatch.setattr(index.manifest, "atomic_write", filling_disk)
+    monkeypatch.setattr(index.segments, "atomic_write", filling_disk)
     with pytest.raises(ArchiveError, match="No space left on device.*Nothing was half-written"):
         archive.add([imgs], progress=False, batch_size=2, checkpoint_every=2)
     monkeypatch.undo()
-    assert not list((tmp_path / "db").glob(".*.tmp"))  # no temporary file left behind
+    assert not list((tmp_path / "db").rglob(".*.tmp"))  # no temporary file left behind
     again = Archive.open(tmp_path / "db")
     again.add([imgs], progress=False)
     archive, report, ok, stores = _agrees(tmp_path / "db")

@@ -5,6 +5,8 @@ import faiss
 import numpy as np
 import pytest
 
+from index.layer_store import LayerStore
+from index.segments import assemble
 from index.store import VectorStore
 from index.synthetic import Descriptors
 from index.vector_index import FLAT, IVF, IndexPolicy, lists_for
@@ -22,16 +24,33 @@ def data():
     return gen, vectors, ids
 
 
+def commit(writer):
+    """A checkpoint without an archive around it: flush, then (manifest written) commit."""
+    state = writer.flush()
+    writer.committed()
+    return state
+
+
+def searchable(db, state) -> VectorStore:
+    """What a reader searches: every segment the state names, in one FAISS index."""
+    return VectorStore(state["dim"], assemble(db, state), measured=state["measured"])
+
+
 @pytest.fixture(scope="module")
-def grown(data):
-    """A store filled batch by batch, as the indexer fills it: flat first, IVF once past flat_max."""
+def grown(data, tmp_path_factory):
+    """A layer's store filled batch by batch, as the indexer fills it: flat first, IVF once past
+    flat_max, with a checkpoint every few batches; and what a reader loads from it."""
     gen, vectors, ids = data
-    store = VectorStore(DIM, policy=POLICY)
+    db = tmp_path_factory.mktemp("grown")
+    writer = LayerStore(db, "parts", DIM, None, policy=POLICY)
     kinds = []
     for start in range(0, N, 1000):
-        store.add(ids[start:start + 1000], vectors[start:start + 1000])
-        kinds.append(store.kind)
-    return store, kinds
+        writer.add(ids[start:start + 1000], vectors[start:start + 1000])
+        kinds.append(writer.kind)
+        if start % 4000 == 0:
+            commit(writer)
+    state = commit(writer)
+    return writer, searchable(db, state), kinds
 
 
 def exact(vectors, ids, queries, k):
@@ -43,9 +62,10 @@ def exact(vectors, ids, queries, k):
 
 
 def test_flat_while_small_then_ivf(grown):
-    store, kinds = grown
+    writer, store, kinds = grown
     assert kinds[:7] == [FLAT] * 7 and kinds[-1] == IVF
-    info = store.describe()
+    info = writer.describe()
+    assert store.describe() == info  # the reader's index is the one the writer built
     assert info["type"] == IVF and info["vectors"] == N
     assert info["nlist"] == lists_for(info["built_for"], POLICY)
     assert 1 <= info["nprobe"] <= info["nlist"] // 4
@@ -54,7 +74,7 @@ def test_flat_while_small_then_ivf(grown):
 
 def test_recall_at_10_against_exact_search_on_new_queries(grown, data):
     gen, vectors, ids = data
-    store, _ = grown
+    _, store, _ = grown
     queries = gen.queries(200, N)
     _, truth = exact(vectors, ids, queries, 10)
     _, found = store.search(queries, 10)
@@ -67,7 +87,7 @@ def test_recall_at_10_against_exact_search_on_new_queries(grown, data):
 def test_scores_are_cosine_similarities_to_8_bit_precision(grown, data):
     # Reference: numpy inner products of the original L2-normalised vectors.
     gen, vectors, ids = data
-    store, _ = grown
+    _, store, _ = grown
     queries = gen.queries(20, N)
     scores, found = store.search(queries, 10)
     row_of = {int(i): r for r, i in enumerate(ids)}
@@ -79,37 +99,37 @@ def test_scores_are_cosine_similarities_to_8_bit_precision(grown, data):
 
 def test_ids_replace_remove_and_reconstruct_work_on_the_ivf_index(grown, data):
     gen, vectors, ids = data
-    store, _ = grown
-    assert sorted(store.ids().tolist()) == sorted(ids.tolist())
-    target = ids[:3]
+    writer, _, _ = grown
+    assert sorted(writer.ids().tolist()) == sorted(ids.tolist())
+    target = ids[:3]  # in the first, sealed segments
     moved = gen.queries(3, N)
-    store.add(target, moved)  # re-embedded items: replaced, not duplicated
-    assert len(store) == N
-    assert np.abs(store.reconstruct(target) - moved).max() < 5e-3
-    scores, found = store.search(moved, 1)
+    writer.add(target, moved)  # re-embedded items: replaced, not duplicated
+    assert len(writer) == N and len(np.unique(writer.ids())) == N
+    assert np.abs(writer.reconstruct(target) - moved).max() < 5e-3
+    state = commit(writer)
+    scores, found = searchable(writer.db, state).search(moved, 1)
     assert found[:, 0].tolist() == target.tolist()
-    assert store.remove(np.concatenate([target, [-7]])) == 3
-    assert len(store) == N - 3 and not set(target.tolist()) & set(store.ids().tolist())
-    store.add(target, vectors[:3])  # put back for the other tests
+    assert writer.remove(np.concatenate([target, [-7]])) == 3
+    assert len(writer) == N - 3 and not set(target.tolist()) & set(writer.ids().tolist())
+    writer.add(target, vectors[:3])  # put back for the other tests
+    commit(writer)
 
 
-def test_save_and_load_keep_type_parameters_and_results(grown, data, tmp_path):
+def test_a_reopened_writer_and_a_reader_see_the_same_index(grown, data):
     gen, vectors, ids = data
-    store, _ = grown
-    store.save(tmp_path / "v.faiss")
-    again = VectorStore.load(tmp_path / "v.faiss", policy=POLICY, measured=store.measured)
-    assert again.describe() == store.describe()
+    writer, _, _ = grown
+    state = commit(writer)
+    again = LayerStore(writer.db, "parts", DIM, state, policy=POLICY)
+    assert again.describe() == writer.describe() and len(again) == N
     q = gen.queries(5, N)
-    assert np.array_equal(again.search(q, 10)[1], store.search(q, 10)[1])
-    # Measurements that describe another index (e.g. a manifest older than the file) are dropped.
-    stale = VectorStore.load(tmp_path / "v.faiss", measured={**store.measured, "nlist": 1})
-    assert "recall_at_10" not in stale.describe()
+    assert np.array_equal(searchable(writer.db, again.state()).search(q, 10)[1],
+                          searchable(writer.db, state).search(q, 10)[1])
 
 
-def test_the_index_is_rebuilt_as_the_store_grows_and_shrinks(data):
+def test_the_index_is_rebuilt_as_the_store_grows_and_shrinks(data, tmp_path):
     gen, vectors, ids = data
     policy = IndexPolicy(flat_max=2_000, train_per_list=20)
-    store = VectorStore(DIM, policy=policy)
+    store = LayerStore(tmp_path, "parts", DIM, None, policy=policy)
     store.add(ids[:2_000], vectors[:2_000])
     first = store.describe()["nlist"]
     store.add(ids[2_000:20_000], vectors[2_000:20_000])  # 10 times larger: the lists are retrained
@@ -120,10 +140,23 @@ def test_the_index_is_rebuilt_as_the_store_grows_and_shrinks(data):
     assert np.abs(store.reconstruct(ids[19_500:19_505]) - vectors[19_500:19_505]).max() < 5e-3
 
 
-def test_pca_reduced_store_keeps_the_interface_and_cuts_code_size(data):
+def test_retraining_the_lists_keeps_every_code(data, tmp_path):
+    """More lists move vectors between lists; their 8-bit codes (not residuals) stay exactly as they were."""
     gen, vectors, ids = data
-    store = VectorStore(DIM, policy=IndexPolicy(flat_max=8_000, pca_dim=128))
-    store.add(ids[:12_000], vectors[:12_000])
+    store = LayerStore(tmp_path, "parts", DIM, None, policy=IndexPolicy(flat_max=2_000, train_per_list=20))
+    store.add(ids[:4_000], vectors[:4_000])
+    nlist = store.nlist()
+    before = store.reconstruct(ids[:4_000])
+    store.add(ids[4_000:16_000], vectors[4_000:16_000])
+    assert store.nlist() > nlist
+    assert np.array_equal(store.reconstruct(ids[:4_000]), before)
+
+
+def test_pca_reduced_store_keeps_the_interface_and_cuts_code_size(data, tmp_path):
+    gen, vectors, ids = data
+    writer = LayerStore(tmp_path, "parts", DIM, None, policy=IndexPolicy(flat_max=8_000, pca_dim=128))
+    writer.add(ids[:12_000], vectors[:12_000])
+    store = searchable(tmp_path, commit(writer))
     info = store.describe()
     assert info["pca_dim"] == 128 and info["code_bytes"] == 128
     scores, found = store.search(vectors[:5], 1)
