@@ -13,19 +13,17 @@ import numpy as np
 from PIL import Image
 
 from . import manifest as mf
-from .backbones import DEFAULT_BACKBONE, NAMES, Backbone, BackboneError, get_backbone
+from .backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone, BackboneError, get_backbone
 from .catalog import Catalog
 from .decode import DecodeError, open_image
 from . import media
 from .exemplars import Exemplars
-from .explain import descriptor, explain_pair, patch_box
-from .layers import PRESET_HINTS, listing, resolve_layers
 from .pipeline import Job, configure_threads, cores, run
 from .pooling import PCAWhitening
 from .scan import diff_by_folder, normalize_roots, walk, walk_roots
 from .search import nearest, row_filter
 from .layer_store import LayerStore
-from .segments import StoreFileError, assemble
+from .segments import StoreFileError, assemble, update
 from .store import VectorStore
 from .vector_index import IndexPolicy, bytes_per_vector_of
 
@@ -102,6 +100,8 @@ class Archive:
 
     @staticmethod
     def _new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
+        from .layers import resolve_layers
+
         try:
             backbone = get_backbone(backbone_name, weights)
             model = backbone.load()
@@ -128,18 +128,36 @@ class Archive:
         }
 
     def refresh(self) -> bool:
-        """Pick up what an indexer committed since this archive was opened; True if anything changed."""
+        """Pick up what an indexer committed since this archive was opened; True if anything changed.
+
+        A loaded store reads only the segments that changed (an indexer's checkpoint replaces its tail
+        and adds a few); after a rebuild, or if that fails, it is loaded anew when next needed."""
         try:
             current = mf.read(self.db)
         except ValueError:
             return False
         if not current or current.get("generation") == self.manifest.get("generation"):
             return False
-        self.manifest = current
-        self._stores.clear()
+        before, self.manifest = self.manifest, current
+        self._update_loaded(before.get("stores", {}))
         self._exemplars.clear()
         self._whitening.clear()
         return True
+
+    def _update_loaded(self, before: dict) -> None:
+        """Stores loaded for searching follow the manifest's new states (from `before`, the states they
+        were loaded at): by the segments that changed, or loaded anew when next needed."""
+        for layer, store in list(self._stores.items()):
+            old, new = before.get(layer), self.manifest.get("stores", {}).get(layer)
+            try:
+                kept = bool(old and new and store.files is not None
+                            and update(store.index, store.files, self.db, old, new))
+            except (OSError, StoreFileError, RuntimeError):
+                kept = False
+            if kept:
+                store.measured = dict(new.get("measured") or {})
+            else:
+                del self._stores[layer]
 
     # --- lazily built parts -----------------------------------------------------------------
     @property
@@ -199,7 +217,10 @@ class Archive:
             state = self.manifest.get("stores", {}).get(entry["name"])
             try:
                 if state:
-                    return VectorStore(int(state["dim"]), assemble(self.db, state), measured=state.get("measured"))
+                    files: dict = {}
+                    store = VectorStore(int(state["dim"]), assemble(self.db, state, files), measured=state.get("measured"))
+                    store.files = files
+                    return store
                 legacy = self.db / entry["file"]  # a store from before segments: one FAISS file
                 if legacy.exists():
                     return VectorStore.load(legacy, measured=self.manifest.get("indexes", {}).get(layer))
@@ -271,7 +292,7 @@ class Archive:
         decode processes (default one per core); file_timeout: seconds before a file's decode is
         abandoned and recorded as a failure (default DEFAULT_FILE_TIMEOUT; 0 = no limit).
         """
-        from .engines import ENGINES
+        from .onnx_engine import ENGINES
 
         if engine is not None and engine not in ENGINES:
             raise ArchiveError(f"unknown engine {engine!r}; choose one of: {', '.join(ENGINES)}")
@@ -354,15 +375,11 @@ class Archive:
         if jobs and getattr(self, "_cluster", None) is not None:
             return self._finish_add(cs, errors, run_id, jobs, on_batch, on_failures, checkpoint,
                                     checkpoint_every, progress)
+        embedder = None
         if jobs:
-            from .engines import EngineError
-
-            try:
-                runtime["engine_used"] = self.embedder.use_engine(runtime.get("engine", "auto"), may_export=True,
-                                                                  images=len(jobs))
-            except EngineError as exc:
-                raise ArchiveError(str(exc)) from None
-        counts = run(jobs, self.embedder, on_batch, on_failures, checkpoint, batch_size=batch_size,
+            embedder = self._indexing_embedder(runtime.get("engine", "auto"), len(jobs))
+            runtime["engine_used"] = embedder.engine.name
+        counts = run(jobs, embedder, on_batch, on_failures, checkpoint, batch_size=batch_size,
                      checkpoint_every=checkpoint_every, readers=workers, file_timeout=file_timeout,
                      progress=progress) if jobs else None
         embedded = counts.embedded if counts else 0
@@ -375,6 +392,47 @@ class Archive:
         speed = {"engine": counts.engine, "seconds": round(counts.seconds, 3), "peak_rss": counts.peak_rss,
                  "peak_rss_workers": counts.peak_rss_workers} if counts else {}
         return {**report, "run_id": run_id, "interrupted": interrupted, "known_failures": cs.known_failures, **speed}
+
+    def _indexing_embedder(self, choice: str, images: int):
+        """What embeds the images of a run: the cached ONNX model without torch when the engine choice
+        allows it (exported first, in a child process, when missing and worth it), else torch."""
+        from .onnx_embed import OnnxEmbedder
+        from .onnx_engine import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path, onnx_available
+
+        if choice != "torch" and onnx_available():
+            b = self.manifest["backbone"]
+            path = cached_model_path(self.db / "engines", b, [l["node"] for l in self.manifest["layers"]],
+                                     self.manifest["pooling"]["p"])
+            if not path.exists() and (choice == "onnx" or images >= AUTO_EXPORT_MIN_IMAGES):
+                self._export_engine(required=choice == "onnx")
+            if path.exists():
+                try:
+                    configure_threads(cores())
+                    return OnnxEmbedder(path, self.layer_names, size=b["input_size"], mean=b["mean"], std=b["std"],
+                                        threads=cores())
+                except EngineError as exc:
+                    if choice == "onnx":
+                        raise ArchiveError(str(exc)) from None
+            elif choice == "onnx":
+                raise ArchiveError("the onnx engine's model could not be exported (see the message above)")
+        try:
+            self.embedder.use_engine("torch")
+        except Exception as exc:  # noqa: BLE001 - EngineError, from a module that needs torch
+            raise ArchiveError(str(exc)) from None
+        return self.embedder
+
+    def _export_engine(self, *, required: bool) -> None:
+        """Export the ONNX model in a child process (`python -m index.engines DB`): torch is loaded
+        there, once per database, and never in the indexer."""
+        import subprocess
+        import sys
+
+        out = subprocess.run([sys.executable, "-m", "index.engines", str(self.db)], capture_output=True, text=True)
+        if out.returncode != 0:
+            message = (out.stderr.strip().splitlines() or ["unknown error"])[-1]
+            if required:
+                raise ArchiveError(f"cannot export the model to ONNX: {message}")
+            print(f"kinscope: ONNX export failed ({message}); using torch", file=sys.stderr)
 
     def _finish_add(self, cs, errors, run_id, jobs, on_batch, on_failures, checkpoint, checkpoint_every, progress):
         """The embedding part of add() on a Dask cluster; the same bookkeeping as on one machine."""
@@ -406,6 +464,7 @@ class Archive:
         commit), then the files it no longer names removed."""
         writers = [self._writer(layer) for layer in self.layer_names]
         states = {w.layer: w.flush() for w in writers}
+        before = dict(self.manifest.get("stores", {}))
         self.manifest["format"] = mf.FORMAT
         self.manifest.setdefault("stores", {}).update(states)
         self.manifest["generation"] += 1
@@ -414,7 +473,7 @@ class Archive:
         mf.write(self.db, self.manifest)
         for w in writers:
             w.committed()
-        self._stores.clear()  # loaded for searching before this checkpoint: stale now
+        self._update_loaded(before)  # stores loaded for searching in this process
 
     def _writer_lock(self):
         archive = self
@@ -550,6 +609,8 @@ class Archive:
         name = entry["name"]
         if self.whitening(name):
             raise ArchiveError(f"layer {name} is PCA-whitened; its scores do not split over positions")
+        from .explain import descriptor, explain_pair, patch_box
+
         row = self.item(int(match))
         query_maps = self.embedder.maps_of_image(self.query_image(query, box))[name]
         match_maps = self.embedder.maps_of_image(self.query_image(int(match)))[name]
@@ -660,6 +721,8 @@ class Archive:
     @staticmethod
     def available_layers(backbone: str = DEFAULT_BACKBONE, weights: str | None = None) -> dict:
         """The layers one can index for a backbone, with channels, stride and presets."""
+        from .layers import listing
+
         try:
             b = get_backbone(backbone, weights)
             rows = listing(b, b.build().eval())

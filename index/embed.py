@@ -9,41 +9,9 @@ from PIL import Image
 from torchvision.models.feature_extraction import create_feature_extractor
 
 from .backbones import Backbone
-from .engines import TorchEngine, make_engine
+from .engines import TorchEngine, make_engine, pool  # noqa: F401  (pool: the torch pooling, used by tests)
 from .layers import Layer
-from .pooling import GEM_EPS, l2_normalize
 from .preprocess import fit_square, to_input
-
-
-def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:
-    """Feature maps -> per layer the L2-normalised GeM descriptor (N, C), and each channel's peak
-    value (N, C), its flat position (N, C) and the grid (H, W).
-
-    The arithmetic of index.pooling.gem (clamp at GEM_EPS, divide by the per-channel maximum, power,
-    mean, root, rescale; bit for bit the same result), done in place: the maps are overwritten.
-    In place matters: fresh 30 MB temporaries per batch cost more than the arithmetic (page faults).
-    """
-    if p <= 0:
-        raise ValueError(f"GeM exponent must be positive, got {p}")
-    descriptors, peaks = {}, {}
-    with torch.inference_mode():
-        # Two taps can hand back one tensor (an identity layer): each gets its own copy first.
-        storages = [m.untyped_storage().data_ptr() for m in maps.values()]
-        shared = {ptr for ptr in storages if storages.count(ptr) > 1}
-        maps = {name: (m.clone() if m.untyped_storage().data_ptr() in shared else m) for name, m in maps.items()}
-        for name, fmap in maps.items():
-            n, c, h, w = fmap.shape
-            flat = fmap.contiguous().reshape(n, c, h * w)
-            values, where = flat.max(dim=2)
-            peaks[name] = (values.numpy(), where.numpy().astype(np.int64), (h, w))
-            x = flat.clamp_min_(GEM_EPS)
-            if p == 1:
-                pooled = x.mean(dim=2)
-            else:
-                scale = values.clamp_min(GEM_EPS).unsqueeze(2)  # = amax of the clamped map
-                pooled = x.div_(scale).pow_(p).mean(dim=2).pow_(1.0 / p).mul_(scale.squeeze(2))
-            descriptors[name] = l2_normalize(pooled.numpy())
-    return descriptors, peaks
 
 
 class Embedder:
@@ -51,6 +19,7 @@ class Embedder:
 
     Descriptors come from the chosen engine (torch or ONNX Runtime, see index.engines); feature maps
     for explanations (`feature_maps`, `maps_of_image`) always come from torch, the reference.
+    (Indexing with a cached ONNX model needs none of this: see index.onnx_embed.)
     """
 
     def __init__(self, backbone: Backbone, model: torch.nn.Module, layers: list[Layer], p: float = 3.0,
@@ -61,7 +30,7 @@ class Embedder:
         self.p = p
         self.size = backbone.input_size
         self.extractor = create_feature_extractor(model, return_nodes={l.node: l.name for l in layers}).eval()
-        self.reference = TorchEngine(self.extractor, [l.name for l in layers])
+        self.reference = TorchEngine(self.extractor, [l.name for l in layers], p=p)
         self.cache_dir = Path(cache_dir) if cache_dir is not None else None
         self._mean = np.asarray(backbone.mean, np.float32)
         self._std = np.asarray(backbone.std, np.float32)
@@ -77,7 +46,7 @@ class Embedder:
         threads = threads or self._threads or torch.get_num_threads()
         self._engine = make_engine(choice, self.extractor, [l.name for l in self.layers], [l.node for l in self.layers],
                                    backbone_manifest=self._backbone_manifest(), cache_dir=self.cache_dir,
-                                   threads=threads, may_export=may_export, images=images)
+                                   threads=threads, may_export=may_export, images=images, p=self.p)
         self._choice = choice
         return self._engine.name
 
@@ -116,7 +85,7 @@ class Embedder:
         """Descriptors, plus per layer each channel's peak (N, C), its flat position (N, C) and the grid (H, W)."""
         n, c, h, w = batch.shape
         assert c == 3, f"expected 3 colour channels, got {c}"
-        return pool(self.engine.maps(batch), self.p)
+        return self.engine.embed(batch)
 
     def embed_pixels(self, pixels: np.ndarray) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:
         """embed_with_peaks for (N, S, S, 3) uint8 pixels as the decode workers send them."""

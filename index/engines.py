@@ -1,14 +1,13 @@
-"""Inference engines: the tapped feature maps of one forward pass, from torch or from ONNX Runtime.
+"""Inference engines for the torch side: torch eager (the reference) and exporting the ONNX model.
 
-torch (eager, through torchvision's feature extractor) is the reference. The ONNX engine runs the same
-extractor exported with the chosen layers as graph outputs; the exported file is cached in the
-database folder (`engines/`), named by a key of backbone, weights hash, input size and layer nodes,
-and checked against torch when it is made. Both engines return torch tensors, so pooling (GeM, peaks)
-is one code path whichever engine ran.
+torch (eager, through torchvision's feature extractor) is the reference. The ONNX engine
+(index.onnx_engine, torch-free) runs the same extractor exported with GeM pooling inside the graph:
+each chosen layer's descriptor and channel peaks are graph outputs. export_onnx checks the exported
+model against torch before it is cached. `python -m index.engines DB` exports the model for an
+archive in its own process, so an indexer that asked for it need never load torch.
 """
 from __future__ import annotations
 
-import hashlib
 import io
 import json
 import sys
@@ -18,35 +17,52 @@ from pathlib import Path
 import numpy as np
 import torch
 
-ENGINES = ("auto", "torch", "onnx")
-OPSET = 17
-EXPORT_FORMAT = 1  # bump when the exported graph changes, so old cache files are not reused
-CACHE_DIR = "engines"
-# Below this many images an export (a few seconds, once per database) costs more than ONNX saves,
-# so "auto" stays on torch unless the exported model is already cached.
-AUTO_EXPORT_MIN_IMAGES = 200
-VERIFY_ATOL = 1e-3  # on raw feature maps (ReLU6 activations, 0..6) of a random batch
+from .onnx_engine import (AUTO_EXPORT_MIN_IMAGES, CACHE_DIR, ENGINES, EXPORT_FORMAT, META_KEY, OPSET,  # noqa: F401
+                          EngineError, OnnxEngine, cached_model_path, model_key, onnx_available, output_names)
+from .pooling import GEM_EPS, l2_normalize
+VERIFY_ATOL = 1e-5  # on L2-normalised descriptors of a random batch (the tests hold them to 1e-4)
+VERIFY_PEAK_ATOL = 1e-3  # on channel maxima (ReLU6 activations, 0..6)
 
 
-class EngineError(Exception):
-    """The engine asked for cannot be used (missing runtime, failed export, mismatching output)."""
+def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:
+    """Feature maps -> per layer the L2-normalised GeM descriptor (N, C), and each channel's peak
+    value (N, C), its flat position (N, C) and the grid (H, W).
 
-
-def onnx_available() -> bool:
-    try:
-        import onnxruntime  # noqa: F401
-    except ImportError:
-        return False
-    return True
+    The arithmetic of index.pooling.gem (clamp at GEM_EPS, divide by the per-channel maximum, power,
+    mean, root, rescale; bit for bit the same result), done in place: the maps are overwritten.
+    In place matters: fresh 30 MB temporaries per batch cost more than the arithmetic (page faults).
+    """
+    if p <= 0:
+        raise ValueError(f"GeM exponent must be positive, got {p}")
+    descriptors, peaks = {}, {}
+    with torch.inference_mode():
+        # Two taps can hand back one tensor (an identity layer): each gets its own copy first.
+        storages = [m.untyped_storage().data_ptr() for m in maps.values()]
+        shared = {ptr for ptr in storages if storages.count(ptr) > 1}
+        maps = {name: (m.clone() if m.untyped_storage().data_ptr() in shared else m) for name, m in maps.items()}
+        for name, fmap in maps.items():
+            n, c, h, w = fmap.shape
+            flat = fmap.contiguous().reshape(n, c, h * w)
+            values, where = flat.max(dim=2)
+            peaks[name] = (values.numpy(), where.numpy().astype(np.int64), (h, w))
+            x = flat.clamp_min_(GEM_EPS)
+            if p == 1:
+                pooled = x.mean(dim=2)
+            else:
+                scale = values.clamp_min(GEM_EPS).unsqueeze(2)  # = amax of the clamped map
+                pooled = x.div_(scale).pow_(p).mean(dim=2).pow_(1.0 / p).mul_(scale.squeeze(2))
+            descriptors[name] = l2_normalize(pooled.numpy())
+    return descriptors, peaks
 
 
 class TorchEngine:
     name = "torch"
 
-    def __init__(self, extractor: torch.nn.Module, names: list[str], threads: int | None = None):
+    def __init__(self, extractor: torch.nn.Module, names: list[str], threads: int | None = None, p: float = 3.0):
         self.extractor = extractor
         self.names = list(names)
         self.threads = threads
+        self.p = p
 
     def maps(self, batch: np.ndarray) -> dict[str, torch.Tensor]:
         """(N, 3, S, S) float32 -> layer name -> (N, C, H, W) feature maps."""
@@ -56,95 +72,83 @@ class TorchEngine:
             out = self.extractor(torch.from_numpy(np.ascontiguousarray(batch, np.float32)))
         return {name: out[name] for name in self.names}
 
-
-class OnnxEngine:
-    name = "onnx"
-
-    def __init__(self, path: Path, names: list[str], threads: int = 1):
-        import onnxruntime as ort
-
-        options = ort.SessionOptions()
-        options.intra_op_num_threads = max(1, int(threads))
-        options.inter_op_num_threads = 1
-        options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-        options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
-        # Idle threads must sleep, not spin: the decode workers need the cores between batches.
-        options.add_session_config_entry("session.intra_op.allow_spinning", "0")
-        options.log_severity_level = 3
-        try:
-            self.session = ort.InferenceSession(str(path), options, providers=["CPUExecutionProvider"])
-        except Exception as exc:
-            raise EngineError(f"ONNX Runtime cannot load {path}: {exc}") from None
-        self.path = Path(path)
-        self.names = list(names)
-        self.threads = threads
-        missing = set(self.names) - {o.name for o in self.session.get_outputs()}
-        if missing:
-            raise EngineError(f"{path} lacks the outputs {sorted(missing)}")
-
-    def maps(self, batch: np.ndarray) -> dict[str, torch.Tensor]:
-        outs = self.session.run(self.names, {"input": np.ascontiguousarray(batch, np.float32)})
-        return {name: torch.from_numpy(out) for name, out in zip(self.names, outs)}
+    def embed(self, batch: np.ndarray) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:
+        """(N, 3, S, S) float32 -> descriptors and peaks, as OnnxEngine.embed."""
+        return pool(self.maps(batch), self.p)
 
 
-def model_key(backbone_manifest: dict, nodes: list[str]) -> str:
-    """What the exported graph depends on; equal keys mean the same graph and weights."""
-    key = {"format": EXPORT_FORMAT, "opset": OPSET, "backbone": backbone_manifest["name"],
-           "weights_sha256": backbone_manifest["weights_sha256"], "input_size": backbone_manifest["input_size"],
-           "nodes": list(nodes)}
-    return hashlib.sha256(json.dumps(key, sort_keys=True).encode()).hexdigest()[:20]
+class _Pooled(torch.nn.Module):
+    """The extractor with GeM pooling, L2 normalisation and channel peaks as graph outputs (the
+    arithmetic of `pool`, out of place so that it traces)."""
 
-
-def cached_model_path(cache_dir: Path, backbone_manifest: dict, nodes: list[str]) -> Path:
-    return Path(cache_dir) / f"{backbone_manifest['name']}-{model_key(backbone_manifest, nodes)}.onnx"
-
-
-class _Outputs(torch.nn.Module):
-    """The feature extractor with a tuple of outputs in layer order (ONNX graphs return sequences)."""
-
-    def __init__(self, extractor: torch.nn.Module, names: list[str]):
+    def __init__(self, extractor: torch.nn.Module, names: list[str], p: float):
         super().__init__()
         self.extractor = extractor
         self.names = list(names)
+        self.p = float(p)
 
     def forward(self, x):
         out = self.extractor(x)
-        return tuple(out[name] for name in self.names)
+        results = []
+        for name in self.names:
+            fmap = out[name]
+            flat = fmap.reshape(fmap.shape[0], fmap.shape[1], -1)
+            values, where = flat.max(dim=2)
+            clamped = flat.clamp(min=GEM_EPS)
+            if self.p == 1:
+                pooled = clamped.mean(dim=2)
+            else:
+                scale = values.clamp(min=GEM_EPS).unsqueeze(2)
+                pooled = (clamped / scale).pow(self.p).mean(dim=2).pow(1.0 / self.p) * scale.squeeze(2)
+            pooled = pooled / pooled.norm(dim=1, keepdim=True).clamp(min=1e-12)
+            results += [pooled, values, where]
+        return tuple(results)
 
 
-def export_onnx(extractor: torch.nn.Module, names: list[str], input_size: int, path: Path) -> None:
-    """Export with a dynamic batch axis, check it against torch, then write `path` atomically."""
+def export_onnx(extractor: torch.nn.Module, names: list[str], input_size: int, p: float, path: Path) -> None:
+    """Export with pooling inside and a dynamic batch axis, check it against torch, write `path` atomically."""
+    import onnx
+
     from .store import atomic_write
 
     buf = io.BytesIO()
     dummy = torch.zeros(2, 3, input_size, input_size)
+    outputs = output_names(names)
     with warnings.catch_warnings(), torch.inference_mode(False), torch.no_grad():
         warnings.simplefilter("ignore")
-        torch.onnx.export(_Outputs(extractor, names).eval(), (dummy,), buf, input_names=["input"],
-                          output_names=list(names), opset_version=OPSET, dynamo=False,
-                          dynamic_axes={"input": {0: "batch"}, **{n: {0: "batch"} for n in names}})
+        grids = {name: list(fmap.shape[2:]) for name, fmap in extractor(dummy).items() if name in names}
+        torch.onnx.export(_Pooled(extractor, names, p).eval(), (dummy,), buf, input_names=["input"],
+                          output_names=outputs, opset_version=OPSET, dynamo=False,
+                          dynamic_axes={"input": {0: "batch"}, **{o: {0: "batch"} for o in outputs}})
+    model = onnx.load_from_string(buf.getvalue())
+    onnx.helper.set_model_props(model, {META_KEY: json.dumps({"layers": list(names), "grids": grids, "p": float(p),
+                                                              "format": EXPORT_FORMAT})})
+    data = model.SerializeToString()
     Path(path).parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(path).with_suffix(".unchecked")
-    tmp.write_bytes(buf.getvalue())
+    tmp.write_bytes(data)
     try:
-        difference = max_difference(TorchEngine(extractor, names), OnnxEngine(tmp, names), input_size)
+        difference, peak_difference = max_difference(TorchEngine(extractor, names, p=p), OnnxEngine(tmp, names),
+                                                     input_size)
     finally:
         tmp.unlink(missing_ok=True)
-    if not difference <= VERIFY_ATOL:
-        raise EngineError(f"the exported model differs from torch by {difference:.2e} (limit {VERIFY_ATOL:g})")
-    atomic_write(Path(path), buf.getvalue())
+    if not (difference <= VERIFY_ATOL and peak_difference <= VERIFY_PEAK_ATOL):
+        raise EngineError(f"the exported model differs from torch by {difference:.2e} in descriptors and "
+                          f"{peak_difference:.2e} in channel peaks (limits {VERIFY_ATOL:g}, {VERIFY_PEAK_ATOL:g})")
+    atomic_write(Path(path), data)
 
 
-def max_difference(a, b, input_size: int, batch: int = 2, seed: int = 0) -> float:
-    """Largest absolute difference between two engines' feature maps on one random batch."""
+def max_difference(a, b, input_size: int, batch: int = 2, seed: int = 0) -> tuple[float, float]:
+    """Largest absolute differences between two engines' descriptors and channel peaks on a random batch."""
     x = np.random.default_rng(seed).normal(size=(batch, 3, input_size, input_size)).astype(np.float32)
-    ma, mb = a.maps(x), b.maps(x)
-    return max(float((ma[n] - mb[n]).abs().max()) for n in a.names)
+    (da, pa), (db, pb) = a.embed(x), b.embed(x)
+    return (max(float(np.abs(da[n] - db[n]).max()) for n in a.names),
+            max(float(np.abs(pa[n][0] - pb[n][0]).max()) for n in a.names))
 
 
 def make_engine(choice: str, extractor: torch.nn.Module, names: list[str], nodes: list[str], *,
                 backbone_manifest: dict, cache_dir: Path | None, threads: int, may_export: bool,
-                images: int | None = None):
+                images: int | None = None, p: float = 3.0):
     """The engine for `choice` ("auto", "torch", "onnx").
 
     "auto" takes ONNX Runtime (the faster on CPU, see docs/benchmarks.md) when its model is cached, or
@@ -153,14 +157,14 @@ def make_engine(choice: str, extractor: torch.nn.Module, names: list[str], nodes
     """
     if choice not in ENGINES:
         raise EngineError(f"unknown engine {choice!r}; choose one of: {', '.join(ENGINES)}")
-    torch_engine = TorchEngine(extractor, names, threads)
+    torch_engine = TorchEngine(extractor, names, threads, p)
     if choice == "torch":
         return torch_engine
     if not onnx_available():
         if choice == "onnx":
             raise EngineError("the onnx engine needs the onnxruntime package: pip install onnxruntime")
         return torch_engine
-    path = cached_model_path(cache_dir, backbone_manifest, nodes) if cache_dir is not None else None
+    path = cached_model_path(cache_dir, backbone_manifest, nodes, p) if cache_dir is not None else None
     if path is not None and path.exists():
         try:
             return OnnxEngine(path, names, threads)
@@ -177,10 +181,43 @@ def make_engine(choice: str, extractor: torch.nn.Module, names: list[str], nodes
                               if path is not None else "the onnx engine needs a cache folder")
         return torch_engine
     try:
-        export_onnx(extractor, names, backbone_manifest["input_size"], path)
+        export_onnx(extractor, names, backbone_manifest["input_size"], p, path)
         return OnnxEngine(path, names, threads)
     except Exception as exc:
         if choice == "onnx":
             raise EngineError(f"cannot export the model to ONNX: {exc}") from None
         print(f"kinscope: ONNX export failed ({exc}); using torch", file=sys.stderr)
         return torch_engine
+
+
+def export_for_archive(db: str) -> Path:
+    """Export (or find cached) the ONNX model of the archive in folder `db`; its path."""
+    from .api import Archive, ArchiveError
+
+    archive = Archive.open(db)
+    embedder = archive.embedder
+    try:
+        embedder.use_engine("onnx", may_export=True)
+    except EngineError as exc:
+        raise ArchiveError(str(exc)) from None
+    return embedder.engine.path
+
+
+def main(argv: list[str] | None = None) -> int:
+    """`python -m index.engines DB`: the export in a process of its own (Archive.add calls it)."""
+    from .api import ArchiveError
+
+    args = sys.argv[1:] if argv is None else argv
+    if len(args) != 1:
+        print("usage: python -m index.engines DB", file=sys.stderr)
+        return 2
+    try:
+        print(export_for_archive(args[0]))
+    except ArchiveError as exc:
+        print(f"kinscope: {exc}", file=sys.stderr)
+        return 1
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

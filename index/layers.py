@@ -7,14 +7,7 @@ from functools import lru_cache
 import torch
 from torchvision.models.feature_extraction import create_feature_extractor, get_graph_node_names
 
-from .backbones import Backbone, BackboneError
-
-PRESET_HINTS = {
-    "colour": "colour, edges and fine grain",
-    "texture": "texture and repeated motifs",
-    "parts": "shapes and object parts",
-    "objects": "whole objects and scenes",
-}
+from .backbones import PRESET_HINTS, Backbone, BackboneError  # noqa: F401  (PRESET_HINTS: re-exported)
 
 
 @dataclass(frozen=True)

@@ -20,7 +20,6 @@ from tqdm import tqdm
 
 from .allocator import keep_buffers
 from .decode_pool import DecodePool, peak_rss_of
-from .embed import Embedder
 
 
 @dataclass
@@ -49,14 +48,13 @@ def cores() -> int:
 
 
 def configure_threads(inference_threads: int) -> None:
-    """Thread pools of the indexing process: torch (pooling, torch engine) and FAISS share one count;
-    and the allocator told to reuse large buffers (index.allocator)."""
+    """Thread pools of the indexing process: torch (if loaded: the torch engine) and FAISS share one
+    count; and the allocator told to reuse large buffers (index.allocator)."""
     import faiss
-    import torch
 
     keep_buffers()
-
-    torch.set_num_threads(inference_threads)
+    if "torch" in sys.modules:  # an indexer on the cached ONNX model never loads torch
+        sys.modules["torch"].set_num_threads(inference_threads)
     faiss.omp_set_num_threads(inference_threads)
 
 
@@ -72,7 +70,7 @@ def peak_rss_self() -> int:
 
 def run(
     jobs: list[Job],
-    embedder: Embedder,
+    embedder,
     on_batch: Callable[[np.ndarray, dict[str, np.ndarray], list[dict], dict[str, tuple]], None],
     on_failures: Callable[[list[dict]], None],
     checkpoint: Callable[[], None],

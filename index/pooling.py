@@ -3,8 +3,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from typing import TYPE_CHECKING
+
 import numpy as np
-import torch
+
+if TYPE_CHECKING:
+    import torch
 
 GEM_EPS = 1e-6  # activations are clamped here before the power, as in the GeM paper
 

@@ -237,13 +237,38 @@ def read_codec(db: Path, file: str) -> faiss.Index:
     return codec
 
 
-def assemble(db: Path, state: dict) -> faiss.Index:
-    """One in-memory FAISS index holding every segment a layer's state names (what readers search)."""
+def assemble(db: Path, state: dict, files: dict | None = None) -> faiss.Index:
+    """One in-memory FAISS index holding every segment a layer's state names (what readers search);
+    `files`, if given, receives each segment file's ids (for `update`)."""
     codec = read_codec(db, state["codec"]) if state.get("codec") else None
     index = vi.flat(int(state["dim"])) if codec is None else copy_index(codec)
     for s in state.get("segments", []):
-        fill(index, read_segment(db, Segment.from_dict(s), state.get("codec")))
+        arrays = read_segment(db, Segment.from_dict(s), state.get("codec"))
+        fill(index, arrays)
+        if files is not None:
+            files[s["file"]] = arrays["ids"]
     return index_with_map(index)
+
+
+def update(index: faiss.Index, files: dict, db: Path, old: dict, new: dict) -> bool:
+    """Bring an assembled index from state `old` to state `new` by loading only the segments that
+    changed (an indexer's checkpoint replaces the tail and adds a few). False when that is not
+    possible (another codec or dimension: the store was rebuilt) and the index must be loaded anew;
+    on an error the index is left half-updated and must be dropped."""
+    if old.get("codec") != new.get("codec") or int(old["dim"]) != int(new["dim"]):
+        return False
+    wanted = {s["file"]: s for s in new.get("segments", [])}
+    gone = [f for f in files if f not in wanted]
+    if gone:
+        vi.remove(index, np.concatenate([files.pop(f) for f in gone]))
+    added = [s for f, s in wanted.items() if f not in files]
+    for s in added:
+        arrays = read_segment(db, Segment.from_dict(s), new.get("codec"))
+        fill(index, arrays)
+        files[s["file"]] = arrays["ids"]
+    if added:
+        index_with_map(index)
+    return True
 
 
 def referenced(state: dict | None) -> set[str]:

@@ -55,6 +55,7 @@ class VectorStore:
         self.dim = dim
         self.index = index if index is not None else vi.flat(dim)
         self.measured = dict(measured or {})  # how the index was built and how well it recalls
+        self.files: dict[str, np.ndarray] | None = None  # segment file -> its ids, when assembled from segments
         assert self.index.d == dim, f"index dimension {self.index.d} != {dim}"
 
     @property

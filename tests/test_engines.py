@@ -132,3 +132,35 @@ def test_pooling_equals_the_reference_gem_and_peaks(p):
     shared = fmap.clone()
     twice, _ = pool({"a": shared, "b": shared}, p)
     assert np.array_equal(twice["a"], twice["b"]) and np.abs(twice["a"] - descriptors["x"]).max() < 1e-6
+
+
+def test_an_indexer_on_the_onnx_model_never_loads_torch(tmp_path, sample_images):
+    """The export runs in a child process; the indexing process itself holds no torch (about 0.7 GB)."""
+    import json
+    import subprocess
+    import sys
+
+    from index.api import Archive
+
+    folder = tmp_path / "imgs"
+    folder.mkdir()
+    for name in ("astronaut", "coffee", "chelsea"):
+        sample_images[name].save(folder / f"{name}.png")
+    Archive.open(tmp_path / "db", create=True, layers=["texture", "objects"]).close()
+    script = (
+        "import json, sys\n"
+        "from index.api import Archive\n"
+        f"report = Archive.open({str(tmp_path / 'db')!r}).add([{str(folder)!r}], progress=False, engine='onnx')\n"
+        "print(json.dumps({'torch': 'torch' in sys.modules, 'engine': report['engine'],"
+        " 'embedded': report['embedded']}))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    seen = json.loads(out.stdout.strip().splitlines()[-1])
+    assert seen == {"torch": False, "engine": "onnx", "embedded": 3}
+    assert list((tmp_path / "db" / "engines").glob("*.onnx"))  # exported once, by the child
+    # The torch reference finds each stored ONNX descriptor with a score of 1.
+    archive = Archive.open(tmp_path / "db")
+    archive.manifest["runtime"]["engine"] = "torch"
+    top = archive.search(str(folder / "coffee.png"), layer="objects", k=1)["results"][0]
+    assert top["path"].endswith("coffee.png") and top["score"] == pytest.approx(1.0, abs=1e-4)

@@ -4,9 +4,10 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
 
-import torch
+if TYPE_CHECKING:
+    import torch
 
 
 class BackboneError(Exception):
@@ -53,6 +54,8 @@ class Backbone:
 
     def load(self) -> torch.nn.Module:
         """The network in eval mode with its pretrained weights; never a silent random init."""
+        import torch
+
         if not self.weights.path.is_file():
             raise BackboneError(self.weights.missing_hint or f"weights file not found: {self.weights.path}")
         model = self.build()

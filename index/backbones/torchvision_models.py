@@ -11,6 +11,7 @@ from pathlib import Path
 import torch
 import torchvision
 
+from . import TORCHVISION_NAMES
 from .base import Backbone, BackboneError, Weights
 
 # name -> presets (colour, texture, parts, objects) and the nodes worth listing
@@ -33,6 +34,7 @@ MODELS = {
     },
 }
 
+assert tuple(MODELS) == TORCHVISION_NAMES, "the registry (backbones/__init__.py) lists the same models"
 
 def imagenet_categories() -> tuple[str, ...]:
     """The 1000 ImageNet class names as torchvision's weights metadata lists them."""
