@@ -170,7 +170,7 @@ def info(db, as_json):
         ix = l["index"]
         kinds.append(f"{l['name']} {ix['type']}" + (f" (nlist {ix['nlist']}, nprobe {ix['nprobe']}"
                      + (f", recall@10 {ix['recall_at_10']:.3f}" if "recall_at_10" in ix else "") + ")" if "nlist" in ix else ""))
-    click.echo(f"indexes   {'; '.join(kinds)}; about {data['index_bytes_per_image']:.0f} bytes per image in memory")
+    click.echo(f"indexes   {'; '.join(kinds)}; about {data['index_bytes_per_image']:.0f} bytes per image in a searching process's memory")
     if data["last_run"]:
         r = data["last_run"]
         click.echo(f"last run  {r['started_at']} -> {r['finished_at'] or '(running)'}: {r['status']}")

@@ -86,10 +86,12 @@ class LayerStore:
         parts.append(vi.stored_ids(self.tail))
         return np.concatenate(parts) if parts else np.zeros(0, np.int64)
 
-    def segment_arrays(self):
-        """(segment or None for the tail, arrays) for every segment, one at a time."""
+    def segment_arrays(self, wanted: np.ndarray | None = None):
+        """(segment or None for the tail, arrays) for every segment, one at a time; with `wanted`
+        (sorted ids), only the segments whose id range may hold some of them are read."""
         for s in self.sealed:
-            yield s, sg.read_segment(self.db, s, self.codec_file)
+            if wanted is None or s.may_hold(wanted):
+                yield s, sg.read_segment(self.db, s, self.codec_file)
         yield None, sg.extract(self.tail)
 
     def reconstruct(self, ids: np.ndarray) -> np.ndarray:
@@ -97,20 +99,15 @@ class LayerStore:
         ids = np.ascontiguousarray(ids, np.int64)
         out = np.zeros((len(ids), self.dim), np.float32)
         found = np.zeros(len(ids), bool)
-        wanted = np.unique(ids)
-        for segment, arrays in self.segment_arrays():
-            if segment is not None and not segment.may_hold(wanted):
-                continue
-            hit = np.isin(arrays["ids"], wanted)
-            if not hit.any():
-                continue
-            vectors = sg.decode(self.codec, sg.subset(arrays, hit))
-            position = {int(i): k for k, i in enumerate(arrays["ids"][hit])}
-            for row, i in enumerate(ids):
-                k = position.get(int(i))
-                if k is not None:
-                    out[row] = vectors[k]
-                    found[row] = True
+        for _, arrays in self.segment_arrays(np.unique(ids)):
+            held = arrays["ids"]
+            order = np.argsort(held, kind="stable")
+            at = np.minimum(np.searchsorted(held[order], ids), max(0, len(held) - 1))
+            hit = (held[order][at] == ids) if len(held) else np.zeros(len(ids), bool)
+            if hit.any():
+                rows = order[at[hit]]
+                out[hit] = sg.decode(self.codec, sg.subset(arrays, rows))
+                found |= hit
         if not found.all():
             raise RuntimeError(f"{int((~found).sum())} ids are not in the {self.layer} store")
         return out
@@ -169,7 +166,8 @@ class LayerStore:
     # --- index type -----------------------------------------------------------------------------
     def maintain(self) -> bool:
         """Rebuild when the size calls for another index type."""
-        kind = vi.wanted_kind(self.kind, len(self), self.dim, self.nlist(), self.policy)
+        kind = vi.wanted_kind(self.kind, len(self), self.dim, self.nlist(), self.policy,
+                              self.measured.get("built_for"))
         if kind is None:
             return False
         self.rebuild(kind)

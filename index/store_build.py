@@ -15,7 +15,9 @@ segment, the training sample (at most TRAIN_BYTES) and the probe queries; never 
   (plus its margin), measured with `probe_queries` stored vectors as queries, each query's own id
   left out. The exact neighbours come from brute force over every vector during the same pass; the
   IVF results of each step are the merge of the results of each output segment, which equals a search of
-  the whole index (every segment shares the codec, so the same lists are probed).
+  the whole index (every segment shares the codec, so the same lists are probed). What the 8-bit codes
+  lose on their own is measured once, where the source is exact (flat -> IVF), and multiplies the
+  recall of the lists in every later build (see _Calibration).
 """
 from __future__ import annotations
 
@@ -71,7 +73,13 @@ def rebuild(store, kind: str, *, transform: Callable | None, dim: int, write: Ca
         codec.train(sample)
     del sample
 
-    calib = _Calibration(queries, probe_ids, nlist) if kind == IVF and n_probe else None
+    calib = None
+    if kind == IVF and n_probe:
+        if sg.pretransformed(codec):  # the PCA option: its loss measured against the source, where exact
+            carried = float(store.measured.get("code_recall_at_10", 1.0)) if store.kind == IVF else 1.0
+            calib = _Calibration(queries, probe_ids, nlist, measure_codes=True, carried=carried)
+        else:
+            calib = _Calibration(queries, probe_ids, nlist, steps=code_steps(codec))
     out = _Output(codec, dim, write, read, segment_bytes, calib)
     for ids, lists, codes, vectors in _source_chunks(store, relist, transform):
         if calib is not None:
@@ -90,7 +98,7 @@ def rebuild(store, kind: str, *, transform: Callable | None, dim: int, write: Ca
             sg.ivf_of(codec).nprobe = nprobe
             sg.ivf_of(tail).nprobe = nprobe
             measured.update(recall_at_10=round(recall, 4), recall_queries=int(n_probe),
-                            recall_target=policy.target_recall)
+                            recall_target=policy.target_recall, code_recall_at_10=round(calib.code_recall, 4))
     return Result(codec, out.segments, tail, measured)
 
 
@@ -207,17 +215,36 @@ class _Output:
 
 
 class _Calibration:
-    """recall@10 of each nprobe step, from exact neighbours and per-segment IVF results."""
+    """recall@10 of each nprobe step, from exact neighbours and per-segment IVF results.
 
-    def __init__(self, queries: np.ndarray, own: np.ndarray, nlist: int):
+    The recall reported estimates recall@10 against exact search on the original descriptors: the
+    share of the exact neighbours (among the vectors as the source holds them) that the probed lists
+    return, times the share the codes keep when every list is scanned (`code_recall`). The two losses
+    are close to independent. For 8-bit codes, `code_recall` is simulated: each candidate's score is
+    perturbed by the error its codes leave (uniform within half a quantization step per dimension,
+    so normal with variance sum_d q_d^2 step_d^2 / 12 after the dot product) and the top 10 compared,
+    which needs no exact vectors and follows the archive's density as it grows (tested against the
+    exact loss where the source is flat). Behind PCA the loss is measured against the source and
+    multiplied by the loss the source already had (`carried`).
+    """
+
+    CANDIDATES = 100  # exact neighbours kept per query for the simulation
+
+    def __init__(self, queries: np.ndarray, own: np.ndarray, nlist: int, *, steps: np.ndarray | None = None,
+                 measure_codes: bool = False, carried: float = 1.0):
         self.queries = np.ascontiguousarray(queries, np.float32)
         self.own = own
         self.k = 11  # ten neighbours besides the query's own vector
-        self.truth = faiss.ResultHeap(len(own), self.k, keep_max=True)
-        steps = list(vi.probe_steps(nlist))
-        self.first = [s for s in steps if s <= max(1, nlist // FIRST_PASS_SHARE)]
-        self.later = [s for s in steps if s not in self.first]
+        self.nlist = nlist
+        self.truth = faiss.ResultHeap(len(own), self.CANDIDATES + 1, keep_max=True)
+        probe = list(vi.probe_steps(nlist))
+        self.first = [s for s in probe if s <= max(1, nlist // FIRST_PASS_SHARE)]
+        self.later = [s for s in probe if s not in self.first]
         self.found = {s: faiss.ResultHeap(len(own), self.k, keep_max=True) for s in self.first}
+        self.steps = steps
+        self.carried = carried
+        self.every_list = faiss.ResultHeap(len(own), self.k, keep_max=True) if measure_codes else None
+        self.code_recall = carried
 
     def exact(self, ids: np.ndarray, vectors: np.ndarray) -> None:
         scores = np.ascontiguousarray(self.queries @ vectors.T, np.float32)
@@ -229,31 +256,67 @@ class _Calibration:
             ivf.nprobe = step
             scores, ids = index.search(self.queries, self.k)
             (heaps or self.found)[step].add_result(scores, ids)
+        if steps is None and self.every_list is not None:
+            ivf.nprobe = self.nlist
+            self.every_list.add_result(*index.search(self.queries, self.k))
 
     def recall(self, heap) -> float:
+        """recall@10 of the probed lists alone, against exact search over the vectors as stored."""
         heap.finalize()
-        truth = self.truth.I
-        return recall_without_self(heap.I, truth, self.own)
+        return recall_without_self(heap.I, self.truth.I, self.own)
 
     def choose(self, out: _Output, target: float) -> tuple[int, float]:
-        """The smallest step reaching `target`; where it is out of reach, the step after which more
-        probes stop paying (gain below 0.002). Later steps are measured one pass each, only if needed."""
+        """The smallest step whose estimated recall reaches `target`; where it is out of reach, the step
+        after which more probes stop paying (the lists' recall gains less than 0.002). Later steps are
+        measured one pass each, only if needed. Returns the step and its estimated recall."""
         self.truth.finalize()
+        if self.every_list is not None:
+            self.every_list.finalize()
+            self.code_recall = recall_without_self(self.every_list.I, self.truth.I, self.own) * self.carried
+        elif self.steps is not None:
+            self.code_recall = simulated_code_recall(self.queries, self.truth.D, self.truth.I, self.own, self.steps)
         best = (1, -1.0)
         for step in self.first + self.later:
             if step in self.found:
-                recall = self.recall(self.found[step])
+                lists = self.recall(self.found[step])
             else:
                 heap = {step: faiss.ResultHeap(len(self.own), self.k, keep_max=True)}
                 for index in out.indexes():
                     self.search(index, [step], heap)
-                recall = self.recall(heap[step])
-            if recall >= target:
-                return step, recall
-            if recall < best[1] + 0.002:
+                lists = self.recall(heap[step])
+            if lists * self.code_recall >= target:
+                return step, lists * self.code_recall
+            if lists < best[1] + 0.002:
                 break
-            best = (step, recall)
-        return best
+            best = (step, lists)
+        return best[0], best[1] * self.code_recall
+
+
+def code_steps(codec: faiss.Index) -> np.ndarray:
+    """Per dimension, the quantization step of an IVF-SQ8 codec (its range / 255)."""
+    sq = sg.ivf_of(codec).sq
+    trained = faiss.vector_to_array(sq.trained)
+    d = int(codec.d)
+    assert sq.qtype == faiss.ScalarQuantizer.QT_8bit and trained.shape == (2 * d,), "per-dimension 8-bit ranges"
+    return (trained[d:] / 255.0).astype(np.float64)  # trained = [minimum (d), range (d)]
+
+
+def simulated_code_recall(queries: np.ndarray, scores: np.ndarray, ids: np.ndarray, own: np.ndarray,
+                          steps: np.ndarray, draws: int = 8, seed: int = 0) -> float:
+    """recall@10 of the top 10 by perturbed scores against the top 10 by exact scores (own id left
+    out), the perturbation being what 8-bit codes do to a dot product (see _Calibration)."""
+    nq, k = scores.shape
+    sigma = np.sqrt((queries.astype(np.float64) ** 2 * steps ** 2).sum(axis=1) / 12.0)
+    rng = np.random.default_rng(seed)
+    valid = (ids >= 0) & (ids != own[:, None])
+    exact = np.where(valid, scores, -np.inf)
+    truth = np.argsort(-exact, axis=1)[:, :10]
+    hits = []
+    for _ in range(draws):
+        noisy = np.where(valid, scores + rng.normal(size=scores.shape) * sigma[:, None], -np.inf)
+        found = np.argsort(-noisy, axis=1)[:, :10]
+        hits.append([len(set(f) & set(t)) / 10 for f, t in zip(found, truth)])
+    return float(np.mean(hits))
 
 
 def recall_without_self(found: np.ndarray, truth: np.ndarray, own: np.ndarray) -> float:

@@ -39,6 +39,7 @@ class IndexPolicy:
     probe_queries: int = 500  # stored vectors, held out, used as queries to measure recall when building
     recall_margin: float = 0.01  # calibrate for target + margin: the estimate from probe_queries has
                                  # a standard error of about 0.005 (bench_search: new queries vs calibration)
+    retrain_growth: float = 2.0  # IVF lists trained again once the store has grown this much since
     pca_dim: int | None = None  # project to this many dimensions before the IVF (memory / dim)
     seed: int = 0
 
@@ -77,20 +78,20 @@ def lists_for(n: int, policy: IndexPolicy) -> int:
     return int(max(1, min(nlist, cap, 65_536)))
 
 
-def wanted(index: faiss.Index, policy: IndexPolicy) -> str | None:
-    """The kind the index should be rebuilt into at its current size, or None to keep it."""
-    ivf = _ivf(index)
-    return wanted_kind(kind_of(index), int(index.ntotal), int(index.d), 0 if ivf is None else int(ivf.nlist), policy)
-
-
-def wanted_kind(kind: str, n: int, dim: int, nlist: int, policy: IndexPolicy) -> str | None:
-    """The kind a store of `kind` (with `nlist` lists if IVF) should become at n vectors, or None."""
+def wanted_kind(kind: str, n: int, dim: int, nlist: int, policy: IndexPolicy,
+                built_for: int | None = None) -> str | None:
+    """The kind a store of `kind` (with `nlist` lists if IVF, built when it held `built_for` vectors)
+    should be rebuilt into at n vectors, or None to keep it."""
     limit = policy.flat_limit(dim)
     if kind == FLAT:
         return IVF if n >= limit else None
     if n < limit // 2:  # shrunk well below the threshold (hysteresis: no flapping)
         return FLAT
-    return IVF if lists_for(n, policy) >= 2 * nlist else None
+    if lists_for(n, policy) >= 2 * nlist:
+        return IVF
+    # Grown by retrain_growth since the lists were trained: what came since may lie elsewhere (an
+    # archive indexed folder by folder drifts), so the lists are trained again and nprobe measured again.
+    return IVF if built_for and n >= policy.retrain_growth * built_for else None
 
 
 def stored_ids(index: faiss.Index) -> np.ndarray:
