@@ -75,9 +75,10 @@ def rebuild(store, kind: str, *, transform: Callable | None, dim: int, write: Ca
 
     calib = None
     if kind == IVF and n_probe:
-        if sg.pretransformed(codec):  # the PCA option: its loss measured against the source, where exact
-            carried = float(store.measured.get("code_recall_at_10", 1.0)) if store.kind == IVF else 1.0
-            calib = _Calibration(queries, probe_ids, nlist, measure_codes=True, carried=carried)
+        if sg.pretransformed(codec):  # the PCA option: lists measured in its space; its loss where the source is exact
+            exact_source = store.kind == FLAT and transform is None
+            calib = _Calibration(queries, probe_ids, nlist, measure_codes=exact_source, space=pretransform_of(codec),
+                                 carried=1.0 if exact_source else float(store.measured.get("code_recall_at_10", 1.0)))
         else:
             calib = _Calibration(queries, probe_ids, nlist, steps=code_steps(codec))
     out = _Output(codec, dim, write, read, segment_bytes, calib)
@@ -224,19 +225,24 @@ class _Calibration:
     perturbed by the error its codes leave (uniform within half a quantization step per dimension,
     so normal with variance sum_d q_d^2 step_d^2 / 12 after the dot product) and the top 10 compared,
     which needs no exact vectors and follows the archive's density as it grows (tested against the
-    exact loss where the source is flat). Behind PCA the loss is measured against the source and
-    multiplied by the loss the source already had (`carried`).
+    exact loss where the source is flat). Behind PCA the loss is measured where the source is exact
+    (flat) and carried over by later builds (`carried`).
     """
 
     CANDIDATES = 100  # exact neighbours kept per query for the simulation
 
     def __init__(self, queries: np.ndarray, own: np.ndarray, nlist: int, *, steps: np.ndarray | None = None,
-                 measure_codes: bool = False, carried: float = 1.0):
+                 measure_codes: bool = False, carried: float = 1.0, space=None):
         self.queries = np.ascontiguousarray(queries, np.float32)
         self.own = own
         self.k = 11  # ten neighbours besides the query's own vector
         self.nlist = nlist
         self.truth = faiss.ResultHeap(len(own), self.CANDIDATES + 1, keep_max=True)
+        # Behind PCA, the lists are judged against exact search in the codec's own space (`space`), and
+        # the codec against exact search in the layer's (`original`, only when measuring its loss).
+        self.space = space
+        self.in_space = space(self.queries) if space is not None else self.queries
+        self.original = faiss.ResultHeap(len(own), self.k, keep_max=True) if space is not None and measure_codes else None
         probe = list(vi.probe_steps(nlist))
         self.first = [s for s in probe if s <= max(1, nlist // FIRST_PASS_SHARE)]
         self.later = [s for s in probe if s not in self.first]
@@ -247,8 +253,11 @@ class _Calibration:
         self.code_recall = carried
 
     def exact(self, ids: np.ndarray, vectors: np.ndarray) -> None:
-        scores = np.ascontiguousarray(self.queries @ vectors.T, np.float32)
-        self.truth.add_result(scores, np.ascontiguousarray(np.broadcast_to(ids, scores.shape), np.int64))
+        labels = np.ascontiguousarray(np.broadcast_to(ids, (len(self.own), len(ids))), np.int64)
+        if self.original is not None:
+            self.original.add_result(np.ascontiguousarray(self.queries @ vectors.T, np.float32), labels)
+        seen = self.space(vectors) if self.space is not None else vectors
+        self.truth.add_result(np.ascontiguousarray(self.in_space @ seen.T, np.float32), labels)
 
     def search(self, index: faiss.Index, steps=None, heaps=None) -> None:
         ivf = sg.ivf_of(index)
@@ -272,7 +281,9 @@ class _Calibration:
         self.truth.finalize()
         if self.every_list is not None:
             self.every_list.finalize()
-            self.code_recall = recall_without_self(self.every_list.I, self.truth.I, self.own) * self.carried
+            reference = self.original if self.original is not None else self.truth
+            reference.finalize()
+            self.code_recall = recall_without_self(self.every_list.I, reference.I, self.own)
         elif self.steps is not None:
             self.code_recall = simulated_code_recall(self.queries, self.truth.D, self.truth.I, self.own, self.steps)
         best = (1, -1.0)
@@ -290,6 +301,19 @@ class _Calibration:
                 break
             best = (step, lists)
         return best[0], best[1] * self.code_recall
+
+
+def pretransform_of(codec: faiss.Index):
+    """The vector transforms in front of a codec's IVF (PCA, re-normalisation), as a function."""
+    pre = faiss.downcast_index(codec)
+    chain = [faiss.downcast_VectorTransform(pre.chain.at(i)) for i in range(pre.chain.size())]
+
+    def apply(x: np.ndarray) -> np.ndarray:
+        for vt in chain:
+            x = vt.apply(np.ascontiguousarray(x, np.float32))
+        return x
+
+    return apply
 
 
 def code_steps(codec: faiss.Index) -> np.ndarray:
