@@ -1,6 +1,6 @@
 """The indexer's side of one layer's vector store: appends, removals and checkpoints in bounded memory.
 
-A LayerStore keeps in memory only the codec (the trained IVF-SQ8 index, empty; none while flat) and
+A LayerStore keeps in memory only the codec (the trained IVF index, empty; none while flat) and
 the open segment (the tail) that new vectors go into; the sealed segments stay on disk (index.segments).
 - add: into the tail; an id already stored elsewhere is removed there first (a re-embedded file).
 - remove: from the tail, and from each sealed segment whose id range may hold the ids (that segment
@@ -77,7 +77,7 @@ class LayerStore:
         if self.codec is not None:
             ivf = sg.ivf_of(self.codec)
             out.update(nlist=int(ivf.nlist), nprobe=int(ivf.nprobe), code_bytes=int(ivf.code_size),
-                       pca_dim=int(ivf.d) if ivf.d != self.codec.d else None)
+                       codes=vi.codes_of(self.codec), pca_dim=int(ivf.d) if ivf.d != self.codec.d else None)
         return {**out, **{k: v for k, v in self.measured.items() if k not in out}}
 
     # --- reading --------------------------------------------------------------------------------

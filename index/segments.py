@@ -1,8 +1,8 @@
 """A layer's vectors on disk as segment files, and turning segments into a FAISS index and back.
 
 In the database folder, `stores/<layer>/` holds:
-- `codec-<n>.faiss`: the trained, empty IVF-SQ8 index (coarse centroids, scalar-quantizer ranges, the
-  optional PCA), written when the index type is (re)built; none while the store is flat (exact);
+- `codec-<n>.faiss`: the trained, empty IVF index (coarse centroids, the scalar quantizer: 8-bit
+  ranges or 16-bit floats, the optional PCA), written when the index type is (re)built; none while the store is flat (exact);
 - `seg-<n>.npz`: a segment, some of the layer's vectors: `ids` (int64), and either `vectors` (float32,
   flat) or `lists` (int32, the inverted list of each vector) and `codes` (uint8, one row a vector),
   with `codec`, the name of the codec file that encoded them.
@@ -148,7 +148,7 @@ def empty(dim: int, codec: faiss.Index | None) -> faiss.Index:
 
 
 def decode(codec: faiss.Index | None, arrays: dict) -> np.ndarray:
-    """The float32 vectors of a segment (from 8-bit codes for IVF: about 1e-3 off), in segment order."""
+    """The float32 vectors of a segment (from the codes for IVF: 8-bit about 1e-3 off, 16-bit floats about 1e-4), in segment order."""
     if codec is None:
         return np.ascontiguousarray(arrays["vectors"], np.float32)
     ivf = ivf_of(codec)

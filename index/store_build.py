@@ -5,8 +5,9 @@ the flat limit, twice the inverted lists after each fourfold growth, flat again 
 when learned whitening maps every vector to a new space. Memory: one source segment, one output
 segment, the training sample (at most TRAIN_BYTES) and the probe queries; never the whole store.
 
-- IVF -> IVF in the same space: every vector keeps its 8-bit code (the scalar quantizer codes the
-  vector itself, not its residual, so codes do not depend on the lists). New coarse centroids come
+- IVF -> IVF in the same space with the same kind of codes: every vector keeps its code (8-bit or
+  16-bit float; the scalar quantizer codes the vector itself, not its residual, so codes do not
+  depend on the lists). New coarse centroids come
   from k-means on a sample of codes, decoded block by block (faiss.Clustering.train_encoded), and
   each vector moves to the list of its nearest new centroid. Nothing is quantized twice.
 - anything else: vectors are decoded, transformed if asked, and encoded by a codec trained on a
@@ -15,9 +16,9 @@ segment, the training sample (at most TRAIN_BYTES) and the probe queries; never 
   (plus its margin), measured with `probe_queries` stored vectors as queries, each query's own id
   left out. The exact neighbours come from brute force over every vector during the same pass; the
   IVF results of each step are the merge of the results of each output segment, which equals a search of
-  the whole index (every segment shares the codec, so the same lists are probed). What the 8-bit codes
-  lose on their own is measured once, where the source is exact (flat -> IVF), and multiplies the
-  recall of the lists in every later build (see _Calibration).
+  the whole index (every segment shares the codec, so the same lists are probed). What the codes
+  lose on their own is simulated from their quantization steps and multiplies the recall of the
+  lists (see _Calibration); behind PCA it is measured where the source is exact and carried.
 """
 from __future__ import annotations
 
@@ -52,7 +53,8 @@ def rebuild(store, kind: str, *, transform: Callable | None, dim: int, write: Ca
     n = len(store)
     rng = np.random.default_rng(policy.seed)
     relist = (kind == IVF and store.kind == IVF and transform is None and dim == store.dim
-              and not sg.pretransformed(store.codec) and not (policy.pca_dim and policy.pca_dim < dim))
+              and not sg.pretransformed(store.codec) and not (policy.pca_dim and policy.pca_dim < dim)
+              and vi.codes_of(store.codec) == vi.codes_for(dim, policy))
     nlist = vi.lists_for(n, policy) if kind == IVF else 0
     if kind == IVF:
         row_bytes = sg.ivf_of(store.codec).code_size if relist else 4 * store.dim
@@ -80,7 +82,7 @@ def rebuild(store, kind: str, *, transform: Callable | None, dim: int, write: Ca
             calib = _Calibration(queries, probe_ids, nlist, measure_codes=exact_source, space=pretransform_of(codec),
                                  carried=1.0 if exact_source else float(store.measured.get("code_recall_at_10", 1.0)))
         else:
-            calib = _Calibration(queries, probe_ids, nlist, steps=code_steps(codec))
+            calib = _Calibration(queries, probe_ids, nlist, steps=code_steps(codec, queries))
     out = _Output(codec, dim, write, read, segment_bytes, calib)
     for ids, lists, codes, vectors in _source_chunks(store, relist, transform):
         if calib is not None:
@@ -145,13 +147,13 @@ def _vectors(store, arrays: dict, rows: np.ndarray, transform) -> np.ndarray:
 
 
 def _relisted_codec(old: faiss.Index, codes: np.ndarray, nlist: int, policy) -> faiss.Index:
-    """An IVF-SQ8 codec with `nlist` new centroids (k-means on decoded codes) and the old quantizer."""
+    """An IVF codec with `nlist` new centroids (k-means on decoded codes) and the old quantizer."""
     old_ivf = sg.ivf_of(old)
     d = int(old.d)
-    new = vi.new_ivf(d, nlist, policy)
+    new = vi.new_ivf(d, nlist, policy, codes=vi.codes_of(old))
     ivf = sg.ivf_of(new)
-    ivf.sq = old_ivf.sq  # the same 8-bit ranges: existing codes stay valid
-    decoder = faiss.IndexScalarQuantizer(d, faiss.ScalarQuantizer.QT_8bit, faiss.METRIC_INNER_PRODUCT)
+    ivf.sq = old_ivf.sq  # the same quantizer (8-bit ranges): existing codes stay valid
+    decoder = faiss.IndexScalarQuantizer(d, old_ivf.sq.qtype, faiss.METRIC_INNER_PRODUCT)
     decoder.sq = old_ivf.sq
     decoder.is_trained = True
     clus = faiss.Clustering(d, nlist, ivf.cp)
@@ -221,8 +223,9 @@ class _Calibration:
     The recall reported estimates recall@10 against exact search on the original descriptors: the
     share of the exact neighbours (among the vectors as the source holds them) that the probed lists
     return, times the share the codes keep when every list is scanned (`code_recall`). The two losses
-    are close to independent. For 8-bit codes, `code_recall` is simulated: each candidate's score is
+    are close to independent. For scalar-quantized codes, `code_recall` is simulated: each candidate's score is
     perturbed by the error its codes leave (uniform within half a quantization step per dimension,
+    the step of 16-bit floats taken at each dimension's typical magnitude,
     so normal with variance sum_d q_d^2 step_d^2 / 12 after the dot product) and the top 10 compared,
     which needs no exact vectors and follows the archive's density as it grows (tested against the
     exact loss where the source is flat). Behind PCA the loss is measured where the source is exact
@@ -316,11 +319,17 @@ def pretransform_of(codec: faiss.Index):
     return apply
 
 
-def code_steps(codec: faiss.Index) -> np.ndarray:
-    """Per dimension, the quantization step of an IVF-SQ8 codec (its range / 255)."""
+def code_steps(codec: faiss.Index, sample: np.ndarray) -> np.ndarray:
+    """Per dimension, the quantization step of an IVF codec: an 8-bit code's range / 255; for 16-bit
+    floats, whose step follows each value (10 fraction bits: a step of 2^(e - 10) for a value in
+    [2^e, 2^(e+1))), the root mean square of that step over `sample` (vectors as stored)."""
     sq = sg.ivf_of(codec).sq
-    trained = faiss.vector_to_array(sq.trained)
     d = int(codec.d)
+    if sq.qtype == faiss.ScalarQuantizer.QT_fp16:
+        x = np.abs(np.asarray(sample, np.float64))
+        ulp = np.where(x > 0, np.exp2(np.floor(np.log2(np.maximum(x, 2.0**-14))) - 10), 0.0)
+        return np.sqrt((ulp ** 2).mean(axis=0)) if len(x) else np.zeros(d)
+    trained = faiss.vector_to_array(sq.trained)
     assert sq.qtype == faiss.ScalarQuantizer.QT_8bit and trained.shape == (2 * d,), "per-dimension 8-bit ranges"
     return (trained[d:] / 255.0).astype(np.float64)  # trained = [minimum (d), range (d)]
 
@@ -328,7 +337,7 @@ def code_steps(codec: faiss.Index) -> np.ndarray:
 def simulated_code_recall(queries: np.ndarray, scores: np.ndarray, ids: np.ndarray, own: np.ndarray,
                           steps: np.ndarray, draws: int = 8, seed: int = 0) -> float:
     """recall@10 of the top 10 by perturbed scores against the top 10 by exact scores (own id left
-    out), the perturbation being what 8-bit codes do to a dot product (see _Calibration)."""
+    out), the perturbation being what the codes do to a dot product (see _Calibration)."""
     nq, k = scores.shape
     sigma = np.sqrt((queries.astype(np.float64) ** 2 * steps ** 2).sum(axis=1) / 12.0)
     rng = np.random.default_rng(seed)

@@ -3,7 +3,8 @@
 - flat: IndexIDMap2(IndexFlatIP), exact. Used while vectors x dimensions stays within
   `IndexPolicy.flat_work` (a query then takes a few milliseconds on one core), or below `flat_max`.
 - ivf-sq8: IndexIVFScalarQuantizer (inverted file, Jegou, Douze and Schmid, TPAMI 2011; 8-bit scalar
-  quantization per dimension, not of residuals, so retraining the lists never re-quantizes), trained
+  quantization per dimension, not of residuals, so retraining the lists never re-quantizes; layers of
+  fewer than `IndexPolicy.fp16_below` dimensions get 16-bit float codes instead, FAISS's SQfp16), trained
   by spherical k-means on a sample of the stored vectors, optionally behind a PCA projection (then
   re-normalised; scores are cosines of the projected vectors). A hash-table direct map keeps ids
   removable and vectors reconstructible. `nprobe` is the smallest step whose recall@10, measured
@@ -41,6 +42,11 @@ class IndexPolicy:
                                  # a standard error of about 0.005 (bench_search: new queries vs calibration)
     retrain_growth: float = 2.0  # IVF lists trained again once the store has grown this much since
     pca_dim: int | None = None  # project to this many dimensions before the IVF (memory / dim)
+    # Below this many dimensions (after PCA) codes are 16-bit floats, not 8-bit: with few dimensions
+    # the 8-bit steps are wide beside the gaps between close neighbours (32 dims, 300 000 synthetic
+    # vectors: 8-bit codes kept 0.83 of the exact 10 nearest, 16-bit floats 0.99; 240 dims: 0.94 and
+    # 1.00; a development script, docs/benchmarks.md). Costs twice the bytes of 8-bit codes.
+    fp16_below: int = 256
     seed: int = 0
 
     @classmethod
@@ -69,6 +75,30 @@ def _ivf(index: faiss.Index):
 
 def kind_of(index: faiss.Index) -> str:
     return IVF if _ivf(index) is not None else FLAT
+
+
+SQ8, FP16 = "sq8", "fp16"  # the codes of an IVF store
+_QTYPES = {SQ8: faiss.ScalarQuantizer.QT_8bit, FP16: faiss.ScalarQuantizer.QT_fp16}
+
+
+def codes_of(index: faiss.Index) -> str | None:
+    """The codes of an IVF index (SQ8 or FP16), None for a flat one."""
+    ivf = _ivf(index)
+    if ivf is None:
+        return None
+    qtype = faiss.downcast_index(ivf).sq.qtype
+    return next(name for name, q in _QTYPES.items() if q == qtype)
+
+
+def codes_for(dim: int, policy: IndexPolicy) -> str:
+    """The codes a new IVF store of `dim` dimensions gets (after PCA, if the policy asks for it)."""
+    coded = policy.pca_dim if policy.pca_dim and policy.pca_dim < dim else dim
+    return FP16 if coded < policy.fp16_below else SQ8
+
+
+def type_name(info: dict) -> str:
+    """A store's index type as shown to people: flat, ivf-sq8 or ivf-fp16."""
+    return f"ivf-{info['codes']}" if info.get("codes") else info["type"]
 
 
 def lists_for(n: int, policy: IndexPolicy) -> int:
@@ -122,7 +152,7 @@ def describe(index: faiss.Index) -> dict:
     out = {"type": kind_of(index), "vectors": int(index.ntotal), "dim": int(index.d)}
     if ivf is not None:
         out.update(nlist=int(ivf.nlist), nprobe=int(ivf.nprobe), code_bytes=int(ivf.code_size),
-                   pca_dim=int(ivf.d) if ivf.d != index.d else None)
+                   codes=codes_of(index), pca_dim=int(ivf.d) if ivf.d != index.d else None)
     return out
 
 
@@ -138,15 +168,17 @@ def bytes_per_vector_of(info: dict) -> float:
 
 
 # --- building ---------------------------------------------------------------------------------------
-def new_ivf(dim: int, nlist: int, policy: IndexPolicy) -> faiss.Index:
-    """An untrained IVF-SQ8 index (behind PCA and re-normalisation when policy.pca_dim is set)."""
+def new_ivf(dim: int, nlist: int, policy: IndexPolicy, codes: str | None = None) -> faiss.Index:
+    """An untrained IVF index with scalar-quantized codes (`codes`, default as `codes_for` says),
+    behind PCA and re-normalisation when policy.pca_dim is set."""
     pca = policy.pca_dim if policy.pca_dim and policy.pca_dim < dim else None
-    spec = (f"PCA{pca},L2norm," if pca else "") + f"IVF{nlist},SQ8"
+    codes = codes or codes_for(dim, policy)
+    spec = (f"PCA{pca},L2norm," if pca else "") + f"IVF{nlist}," + {SQ8: "SQ8", FP16: "SQfp16"}[codes]
     index = faiss.index_factory(dim, spec, faiss.METRIC_INNER_PRODUCT)
     ivf = faiss.downcast_index(_ivf(index))
     ivf.by_residual = False
-    # Per-dimension ranges from the sample, widened by 20% each side: values beyond a sample's range
-    # would be clipped (seen on synthetic sets: component errors of 0.01 instead of 0.0006).
+    # Per-dimension ranges from the sample (8-bit codes), widened by 20% each side: values beyond a
+    # sample's range would be clipped (seen on synthetic sets: component errors of 0.01 instead of 0.0006).
     ivf.sq.rangestat = faiss.ScalarQuantizer.RS_minmax
     ivf.sq.rangestat_arg = 0.2
     ivf.cp.spherical = True  # centroids on the unit sphere, as the vectors are
