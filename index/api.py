@@ -5,6 +5,7 @@ import errno
 import fcntl
 import os
 import sqlite3
+import sys
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Iterable
@@ -79,7 +80,7 @@ class Archive:
                 raise ArchiveError(f"{db} is not a kinscope database (no {mf.FILE}); index a folder into it first")
             if db.exists() and any(db.iterdir()):
                 raise ArchiveError(f"{db} is not empty and holds no {mf.FILE}; choose a new or empty folder for --db")
-            manifest = cls._new_manifest(db, backbone or DEFAULT_BACKBONE, layers, gem_p, whiten, weights)
+            manifest = cls._new_manifest_apart(db, backbone or DEFAULT_BACKBONE, layers, gem_p, whiten, weights)
             archive = cls(db, manifest)
             archive.catalog.set_layers([{k: l[k] for k in ("name", "node", "channels", "stride", "dim")} for l in manifest["layers"]])
             mf.write(db, manifest)
@@ -97,6 +98,29 @@ class Archive:
                 + "\nUse a new --db folder for these settings, or leave them out to use the archive's own."
             )
         return cls(db, manifest)
+
+    @classmethod
+    def _new_manifest_apart(cls, db, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
+        """A new archive's manifest. Resolving its layers loads the model, so unless this process
+        already holds torch, that happens in a child process (`python -m index.engines
+        --new-manifest`): an indexer creating its archive then stays without torch (about 0.7 GB)."""
+        import json
+        import subprocess
+
+        if "torch" in sys.modules:
+            return cls._new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights)
+        asked = {"db": str(db), "backbone": backbone_name, "layers": layer_names, "gem_p": gem_p,
+                 "whiten": whiten, "weights": None if weights is None else str(weights)}
+        out = subprocess.run([sys.executable, "-m", "index.engines", "--new-manifest"], input=json.dumps(asked),
+                             capture_output=True, text=True)
+        try:
+            answer = json.loads(out.stdout.strip().splitlines()[-1])
+        except (IndexError, ValueError):
+            message = (out.stderr.strip().splitlines() or ["no answer"])[-1]
+            raise ArchiveError(f"cannot load the backbone to create the archive: {message}") from None
+        if "error" in answer:
+            raise ArchiveError(answer["error"])
+        return answer["manifest"]
 
     @staticmethod
     def _new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights) -> dict:

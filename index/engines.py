@@ -203,13 +203,35 @@ def export_for_archive(db: str) -> Path:
     return embedder.engine.path
 
 
+def new_manifest(asked: dict) -> dict:
+    """`Archive._new_manifest` for the settings in `asked` (from Archive._new_manifest_apart), as
+    {"manifest": ...} or {"error": message}."""
+    from pathlib import Path
+
+    from .api import Archive, ArchiveError
+
+    try:
+        return {"manifest": Archive._new_manifest(Path(asked["db"]), asked["backbone"], asked["layers"],
+                                                  asked["gem_p"], asked["whiten"], asked["weights"])}
+    except ArchiveError as exc:
+        return {"error": str(exc)}
+
+
 def main(argv: list[str] | None = None) -> int:
-    """`python -m index.engines DB`: the export in a process of its own (Archive.add calls it)."""
+    """`python -m index.engines DB`: the export in a process of its own (Archive.add calls it).
+    `python -m index.engines --new-manifest` (settings as JSON on stdin): a new archive's manifest,
+    as JSON on stdout (Archive.open calls it when creating an archive in a process without torch)."""
+    import json
+
     from .api import ArchiveError
 
     args = sys.argv[1:] if argv is None else argv
+    if args == ["--new-manifest"]:
+        answer = new_manifest(json.loads(sys.stdin.read()))
+        print(json.dumps(answer))
+        return 1 if "error" in answer else 0
     if len(args) != 1:
-        print("usage: python -m index.engines DB", file=sys.stderr)
+        print("usage: python -m index.engines DB | --new-manifest", file=sys.stderr)
         return 2
     try:
         print(export_for_archive(args[0]))
