@@ -9,6 +9,7 @@ import click
 
 from .api import Archive, ArchiveError
 from .backbones import DEFAULT_BACKBONE, NAMES
+from .vector_index import type_name
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
 
@@ -168,8 +169,7 @@ def info(db, as_json):
     kinds = []
     for l in data["layers"]:
         ix = l["index"]
-        shown = f"ivf-{ix['codes']}" if ix.get("codes") else ix["type"]  # ivf-sq8 / ivf-fp16; flat
-        kinds.append(f"{l['name']} {shown}" + (f" (nlist {ix['nlist']}, nprobe {ix['nprobe']}"
+        kinds.append(f"{l['name']} {type_name(ix)}" + (f" (nlist {ix['nlist']}, nprobe {ix['nprobe']}"
                      + (f", recall@10 {ix['recall_at_10']:.3f}" if "recall_at_10" in ix else "") + ")" if "nlist" in ix else ""))
     click.echo(f"indexes   {'; '.join(kinds)}; about {data['index_bytes_per_image']:.0f} bytes per image in a searching process's memory")
     if data["last_run"]:

@@ -75,9 +75,7 @@ class LayerStore:
     def describe(self) -> dict:
         out = {"type": self.kind, "vectors": len(self), "dim": self.dim}
         if self.codec is not None:
-            ivf = sg.ivf_of(self.codec)
-            out.update(nlist=int(ivf.nlist), nprobe=int(ivf.nprobe), code_bytes=int(ivf.code_size),
-                       codes=vi.codes_of(self.codec), pca_dim=int(ivf.d) if ivf.d != self.codec.d else None)
+            out.update(vi.ivf_fields(self.codec))
         return {**out, **{k: v for k, v in self.measured.items() if k not in out}}
 
     # --- reading --------------------------------------------------------------------------------

@@ -251,7 +251,6 @@ class _Calibration:
         self.later = [s for s in probe if s not in self.first]
         self.found = {s: faiss.ResultHeap(len(own), self.k, keep_max=True) for s in self.first}
         self.steps = steps
-        self.carried = carried
         self.every_list = faiss.ResultHeap(len(own), self.k, keep_max=True) if measure_codes else None
         self.code_recall = carried
 
@@ -338,7 +337,6 @@ def simulated_code_recall(queries: np.ndarray, scores: np.ndarray, ids: np.ndarr
                           steps: np.ndarray, draws: int = 8, seed: int = 0) -> float:
     """recall@10 of the top 10 by perturbed scores against the top 10 by exact scores (own id left
     out), the perturbation being what the codes do to a dot product (see _Calibration)."""
-    nq, k = scores.shape
     sigma = np.sqrt((queries.astype(np.float64) ** 2 * steps ** 2).sum(axis=1) / 12.0)
     rng = np.random.default_rng(seed)
     valid = (ids >= 0) & (ids != own[:, None])

@@ -147,13 +147,17 @@ def reconstruct(index: faiss.Index, ids: np.ndarray) -> np.ndarray:
     return index.reconstruct_batch(ids)
 
 
-def describe(index: faiss.Index) -> dict:
+def ivf_fields(index: faiss.Index) -> dict:
+    """nlist, nprobe, code size, codes and PCA dimension of an IVF index (or codec); {} for a flat one."""
     ivf = _ivf(index)
-    out = {"type": kind_of(index), "vectors": int(index.ntotal), "dim": int(index.d)}
-    if ivf is not None:
-        out.update(nlist=int(ivf.nlist), nprobe=int(ivf.nprobe), code_bytes=int(ivf.code_size),
-                   codes=codes_of(index), pca_dim=int(ivf.d) if ivf.d != index.d else None)
-    return out
+    if ivf is None:
+        return {}
+    return dict(nlist=int(ivf.nlist), nprobe=int(ivf.nprobe), code_bytes=int(ivf.code_size),
+                codes=codes_of(index), pca_dim=int(ivf.d) if ivf.d != index.d else None)
+
+
+def describe(index: faiss.Index) -> dict:
+    return {"type": kind_of(index), "vectors": int(index.ntotal), "dim": int(index.d), **ivf_fields(index)}
 
 
 def bytes_per_vector(index: faiss.Index) -> float:
