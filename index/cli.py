@@ -235,22 +235,28 @@ def check(db, repair, as_json):
 @click.option("--port", default=8470, show_default=True, type=click.IntRange(1, 65535))
 @click.option("--token", envvar="KINSCOPE_TOKEN", help="Access token every request must carry; required off loopback "
               "(or set KINSCOPE_TOKEN).")
-def serve(db, host, port, token):
+@click.option("--allow-host", "allow_hosts", multiple=True, metavar="NAME",
+              help="Another host name the page may be opened by (repeatable), e.g. a reverse proxy's. "
+              "Requests naming any other host are refused.")
+def serve(db, host, port, token, allow_hosts):
     """Start the search page on this machine (waitress WSGI server)."""
     try:
-        from web.serve import ServeError, check_binding, serve as run_server
+        from web.serve import (ServeError, answered_names, check_allow_host, check_binding, is_loopback,
+                               serve as run_server)
     except ImportError:
         _fail("the web page needs Flask and waitress: pip install -e .")
     try:
         check_binding(host, token)
+        allow_hosts = tuple(check_allow_host(name) for name in allow_hosts)
         with Archive.open(db):
             pass
     except (ServeError, ArchiveError) as exc:
         _fail(exc)
     shown = f"[{host}]" if ":" in host else host
     click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + (f"?token=..." if token else ""))
-    click.echo("Only this machine can reach it on 127.0.0.1. Stop with Ctrl-C.")
-    run_server(db, host, port, token)
+    reach = "Only this machine can reach it. " if is_loopback(host) else ""
+    click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
+    run_server(db, host, port, token, allow_hosts=allow_hosts)
 
 
 from .cli_duplicates import duplicates_cmd, restore_cmd  # noqa: E402

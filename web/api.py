@@ -7,7 +7,7 @@ from pathlib import Path
 from flask import Blueprint, Response, jsonify, request, url_for
 
 from index.api import ArchiveError
-from index.decode import DecodeError, open_image
+from index.decode import DecodeError
 from index.search import item_date
 
 from . import params
@@ -41,14 +41,16 @@ def _summary(row: dict) -> dict:
     return out
 
 
-def _query():
-    """The query named by the request: an uploaded file, an earlier upload's token, or an item id."""
+def _query(keep: bool = False):
+    """The query named by the request, as Archive takes it: an uploaded file (kept for later requests
+    when `keep`), an earlier upload's token, or an item id. Returns (query, upload token or None)."""
     h = holder()
     if "file" in request.files:
-        return _decode_upload(), None
+        kept = _decode_upload()
+        return kept.image(params.box()), h.remember(kept) if keep else None
     token = params.text("upload", 40)
     if token:
-        return h.recall(token), token
+        return h.recall(token).image(params.box()), token
     item = params.integer("item")
     if item is not None:
         return item, None
@@ -56,15 +58,13 @@ def _query():
 
 
 def _decode_upload():
-    """Content is checked by decoding it (never by its name or declared type)."""
-    upload = request.files["file"]
-    data = upload.read()
+    """Content is checked by decoding it (never by its name or declared type); only a reduced copy
+    is kept (web.uploads)."""
+    data = request.files["file"].read()
     if not data:
         raise params.BadRequest("the uploaded file is empty")
     try:
-        from flask import current_app
-
-        return open_image(data, max_pixels=current_app.config["MAX_UPLOAD_PIXELS"]).image
+        return holder().decode(data)
     except DecodeError as exc:
         raise params.BadRequest(f"the uploaded file cannot be used as a query: {exc.reason}") from None
 
@@ -119,18 +119,16 @@ def upload_query():
     """Keep an uploaded query for later searches, region searches and explanations."""
     if "file" not in request.files:
         raise params.BadRequest("send the image as multipart form field 'file'")
-    image = _decode_upload()
-    token = holder().remember(image)
-    return jsonify(upload=token, width=image.width, height=image.height,
+    kept = _decode_upload()
+    token = holder().remember(kept)
+    return jsonify(upload=token, width=kept.width, height=kept.height,
                    image=url_for("media.upload_image", token=token)), 201
 
 
 @bp.route("/search", methods=["GET", "POST"])
 def search():
     h = holder()
-    query, token = _query()
-    if "file" in request.files:
-        token = h.remember(query)
+    query, token = _query(keep=True)
     k = params.integer("k", 24, 1, 500)
     offset = params.integer("offset", 0, 0, 100_000)
     with h.lock:

@@ -1,8 +1,6 @@
 """Images by id only: thumbnails (cached in the database folder), display copies, patches, uploads."""
 from __future__ import annotations
 
-import io
-
 from flask import Blueprint, Response, jsonify
 
 from index.api import ArchiveError
@@ -61,9 +59,4 @@ def patch(item_id: int):
 def upload_image(token: str):
     if not token.isalnum() or len(token) > 40:
         raise params.BadRequest("bad upload token")
-    image = holder().recall(token)
-    view = image.copy()
-    view.thumbnail((1600, 1600))
-    buf = io.BytesIO()
-    view.save(buf, "JPEG", quality=88)
-    return _jpeg(buf.getvalue())
+    return _jpeg(holder().recall(token).display)

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import ipaddress
+import re
 import socket
 
 
@@ -30,17 +31,47 @@ def check_binding(host: str, token: str | None) -> None:
         raise ServeError("the access token must be at least 16 characters long")
 
 
+def check_allow_host(name: str) -> str:
+    """A name for --allow-host: a host name or IP address, no scheme, port, path or wildcard."""
+    bare = name.strip().lower().strip("[]").rstrip(".")
+    label = re.compile(r"[a-z0-9]([a-z0-9-]{0,61}[a-z0-9])?")
+    if (bare and all(label.fullmatch(part) for part in bare.split("."))) or _is_ipv6(bare):
+        return bare
+    raise ServeError(f"--allow-host takes a host name or IP address such as photos.lan (no scheme, port or "
+                     f"wildcard), not {name!r}")
+
+
+def _is_ipv6(name: str) -> bool:
+    try:
+        return ipaddress.ip_address(name).version == 6
+    except ValueError:
+        return False
+
+
+def answered_names(host: str, port: int, allow_hosts: tuple[str, ...]) -> list[str]:
+    """The Host names this server will answer to, for people (web.guard.HostRule decides)."""
+    from .guard import LOOPBACK_NAMES, WILDCARDS
+
+    shown = lambda name: f"[{name}]" if ":" in name else name  # noqa: E731
+    names = [f"{shown(n)}:{port}" for n in dict.fromkeys(LOOPBACK_NAMES + (() if host in WILDCARDS else (host,)))]
+    if host in WILDCARDS:
+        names.append(f"any numeric IP address:{port}")
+    return names + [shown(n) for n in allow_hosts]
+
+
 def free_port(host: str = "127.0.0.1") -> int:
     with socket.socket() as s:
         s.bind((host, 0))
         return s.getsockname()[1]
 
 
-def serve(db: str, host: str, port: int, token: str | None, threads: int = 4) -> None:
+def serve(db: str, host: str, port: int, token: str | None, threads: int = 4,
+          allow_hosts: tuple[str, ...] = ()) -> None:
     from waitress import serve as waitress_serve
 
     from . import create_app
 
     check_binding(host, token)
-    app = create_app({"KINSCOPE_DB": db, "KINSCOPE_TOKEN": token})
+    app = create_app({"KINSCOPE_DB": db, "KINSCOPE_TOKEN": token, "KINSCOPE_LISTEN": host, "KINSCOPE_PORT": port,
+                      "KINSCOPE_ALLOW_HOSTS": tuple(allow_hosts)})
     waitress_serve(app, host=host, port=port, threads=threads, ident="kinscope", clear_untrusted_proxy_headers=True)
