@@ -8,6 +8,7 @@ archive item, and hit a bad upload. Screenshots go to test-output/screenshots/ (
 from __future__ import annotations
 
 import csv
+import json
 import os
 import shutil
 import subprocess
@@ -317,3 +318,81 @@ def test_paste_and_drop_give_a_query(page, demo_subset, how):
     assert page.locator("#results .result-name").first.inner_text() == Path(key[QUERY]["source"]).name
     assert page.inner_text("#query-label") == ("Pasted image" if how == "paste" else "scan.jpg")
     assert page.locator("#drop-overlay").is_hidden()
+
+
+ATTACK = """async ([target, item, jpeg]) => {
+    const out = {};
+    const form = new FormData();
+    form.append('file', new Blob([new Uint8Array(jpeg)], {type: 'image/jpeg'}), 'q.jpg');
+    try { out.upload = (await fetch(target + '/api/queries', {method: 'POST', body: form, mode: 'no-cors'})).type; }
+    catch (e) { out.upload = 'failed'; }
+    try { out.items = await (await fetch(target + '/api/items?limit=5')).text(); } catch (e) { out.items = 'failed'; }
+    out.img = await new Promise(done => {
+        const img = new Image();
+        img.onload = () => done(img.naturalWidth);
+        img.onerror = () => done(0);
+        img.src = target + '/media/items/' + item + '/image';
+    });
+    return out;
+}"""
+
+
+
+@pytest.fixture
+def other_site():
+    """A page of another site on this machine: http://localhost:PORT (the server is http://127.0.0.1:...)."""
+    import http.server
+    import threading
+
+    class Page(http.server.BaseHTTPRequestHandler):
+        def do_GET(self):
+            body = b"<!doctype html><title>another site</title><p>an ordinary page</p>"
+            self.send_response(200)
+            self.send_header("Content-Type", "text/html")
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, *args):
+            pass
+
+    httpd = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Page)
+    thread = threading.Thread(target=httpd.serve_forever, daemon=True)
+    thread.start()
+    yield f"http://localhost:{httpd.server_address[1]}/"
+    httpd.shutdown()
+    httpd.server_close()
+
+
+def test_other_sites_in_the_same_browser_get_nothing(browser, server, other_site):
+    """The attacks of a web page the user happens to visit, made by Chromium itself. A page of another
+    site uploads, fetches and embeds an image; the statuses the server answered are read through the
+    DevTools protocol (the browser hides them from the page). Then a name re-pointed at 127.0.0.1
+    (--host-resolver-rules stands in for DNS rebinding) opens the server as its own origin."""
+    port = int(server.rsplit(":", 1)[1])
+    with urllib.request.urlopen(server + "/api/items?limit=1") as r:
+        item = json.load(r)["items"][0]
+    rebinding = browser.browser_type.launch(executable_path=str(CHROMIUM),
+                                            args=ARGS + ["--host-resolver-rules=MAP rebound.example 127.0.0.1"])
+    try:
+        context = rebinding.new_context()
+        page = context.new_page()
+        cdp = context.new_cdp_session(page)
+        cdp.send("Network.enable")
+        urls, statuses = {}, {}
+        cdp.on("Network.requestWillBeSent", lambda e: urls.__setitem__(e["requestId"], e["request"]["url"]))
+        cdp.on("Network.responseReceivedExtraInfo", lambda e: statuses.__setitem__(e["requestId"], e["statusCode"]))
+        page.goto(other_site)
+        out = page.evaluate(ATTACK, [server, item["id"], list((DEMO / QUERY).read_bytes())])
+        page.wait_for_timeout(500)
+        answered = {urls[k].removeprefix(server): v for k, v in statuses.items() if urls.get(k, "").startswith(server)}
+        assert answered == {"/api/queries": 403, "/api/items?limit=5": 403, f"/media/items/{item['id']}/image": 403}
+        assert out["items"] == "failed" and out["img"] == 0, out
+        # DNS rebinding: to the browser, http://rebound.example:PORT is the attacker's own origin.
+        for path in ("/", "/api/items?limit=5", f"/media/items/{item['id']}/image"):
+            response = page.goto(f"http://rebound.example:{port}{path}")
+            assert response.status == 421, (path, response.status)
+            assert item["path"] not in page.content()
+        context.close()
+    finally:
+        rebinding.close()
