@@ -145,9 +145,9 @@ def _print_notes(report: dict, db: str) -> None:
     links = [s for s in report.get("skipped", []) if "target" in s]
     folders = [s for s in report.get("skipped", []) if "target" not in s]
     if links:
-        some = "1 link points" if len(links) == 1 else f"{len(links)} links point"
-        click.echo(f"{some} outside the indexed folders and were not indexed (e.g. {links[0]['path']} -> "
-                   f"{links[0]['target']}); index the folders they point into to include those files")
+        click.echo(f"not indexed: {len(links)} link{'s' if len(links) != 1 else ''} to files outside the indexed "
+                   f"folders (e.g. {links[0]['path']} -> {links[0]['target']}); index the folders they point into to "
+                   "include those files")
     for s in folders:
         click.echo(f"left out: {s['path']} ({s['reason']})")
     for root, count in report.get("gone_roots", {}).items():

@@ -21,7 +21,7 @@ from typing import IO, Iterator
 from PIL import Image, UnidentifiedImageError
 
 from .decode_memory import (ALPHA_MODES, DEEP_MODES, DEFAULT_MAX_DECODE_BYTES, deep_to_8bit, estimate, factor_for,
-                            reduces_first)
+                            reduce, reduces_first)
 
 SUPPORTED_EXTENSIONS: frozenset[str] = frozenset(
     {".jpg", ".jpeg", ".jpe", ".png", ".webp", ".tif", ".tiff",
@@ -240,7 +240,7 @@ def _small_rgb(im: Image.Image, min_side: int | None) -> Image.Image:
     if im.mode in _DEEP_MODES:
         return deep_to_8bit(im, factor).convert("RGB")
     if factor >= 2 and reduces_first(im):
-        return _to_rgb(im.reduce(factor))
+        return _to_rgb(reduce(im, factor))
     return _reduce(_to_rgb(im), min_side)
 
 

@@ -15,7 +15,7 @@ import numpy as np
 from PIL import Image
 
 DEFAULT_MAX_DECODE_BYTES = 1 << 30  # per decode; with one decode worker per core, a bound per core
-STRIPE_BYTES = 8 << 20  # source rows converted at a time in deep_to_8bit
+STRIPE_BYTES = 2 << 20  # source rows converted at a time (deep_to_8bit, reduce)
 
 DEEP_MODES = frozenset({"I;16", "I;16B", "I;16L", "I;16N", "I", "F"})
 ALPHA_MODES = frozenset({"RGBA", "LA", "PA", "RGBa"})
@@ -50,13 +50,26 @@ def estimate(im: Image.Image, min_side: int | None) -> int:
     decoded = full * pixel_bytes(im.mode)
     factor = factor_for(im.size, min_side)
     small = -(-width // factor) * -(-height // factor)
+    stripes = STRIPE_BYTES * 12  # a stripe's crop, its array and float64 sums (deep) or premultiplied copy
     if im.mode in DEEP_MODES:  # stripes, then an 8-bit grey image and its RGB copy at the output size
-        return decoded + STRIPE_BYTES * 3 + small * 5
-    if factor >= 2 and reduces_first(im):
-        premultiplied = full * 4 if im.mode in ("RGBA", "LA") else 0  # Pillow's reduce of alpha images
-        return decoded + premultiplied + small * 4 * 4
+        return decoded + stripes + small * 5
+    if factor >= 2 and reduces_first(im):  # reduced, then converted (alpha: RGBA, white, composite)
+        return decoded + stripes + small * 4 * 4
     copies = 3 if im.mode in ALPHA_MODES or "transparency" in im.info else 1  # RGBA, white, composite
     return decoded + full * 4 * copies + small * 4
+
+
+def reduce(im: Image.Image, factor: int) -> Image.Image:
+    """Image.reduce, a stripe of rows at a time for alpha images (Pillow premultiplies a full-size copy
+    of them first). Stripes start at multiples of `factor`, so every box is the one Image.reduce takes."""
+    if im.mode not in ("RGBA", "LA"):
+        return im.reduce(factor)
+    width, height = im.size
+    step = factor * max(1, STRIPE_BYTES // max(1, width * pixel_bytes(im.mode) * factor))
+    out = Image.new(im.mode, (-(-width // factor), -(-height // factor)))
+    for top in range(0, height, step):
+        out.paste(im.crop((0, top, width, min(height, top + step))).reduce(factor), (0, top // factor))
+    return out
 
 
 def deep_to_8bit(im: Image.Image, factor: int = 1) -> Image.Image:
