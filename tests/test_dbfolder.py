@@ -273,6 +273,7 @@ def test_impossible_dates_are_refused(indexed, tmp_path):
     for value in ("2026-13-45", "2026-02-30", "2026-1-1"):
         response = client.get(f"/api/search?item=1&layer=colour&date_from={value}")
         assert response.status_code == 400 and "date_from" in response.get_json()["error"], value
+        assert "is not a real date" in response.get_json()["error"], value  # params.date, before any search
     assert client.get("/api/search?item=1&layer=colour&date_to=2026-02-28").status_code == 200
     with pytest.raises(ArchiveError, match="real date"):
         Archive.open(db).search(1, layer="colour", date_from="2026-13-45")
