@@ -208,9 +208,14 @@ class Catalog:
         rows = list(self.db.query("select * from images where path = ?", [path]))
         return rows[0] if rows else None
 
-    def rows_with_size(self, size: int) -> list[dict]:
-        """Rows of files of this size (candidates for a move detected by content)."""
-        return list(self.db.query("select id, path, size, mtime, sha256, status from images where size = ?", [size]))
+    def size_known(self, size: int) -> bool:
+        """Does any row have a file of this size? (a new file of that size may be a moved one)"""
+        return self.db.execute("select 1 from images where size = ? limit 1", [size]).fetchone() is not None
+
+    def rows_with_hash(self, sha256: str) -> list[dict]:
+        """Rows of files with this content hash (candidates for a move detected by content)."""
+        q = "select id, path, size, mtime, sha256, status from images where sha256 = ?"
+        return list(self.db.query(q, [sha256]))
 
     def iter_paths(self, chunk: int = 10_000):
         """(id, path) of every image row, a chunk of rows in memory at a time."""

@@ -117,9 +117,7 @@ def rename(archive, old: str, new: str) -> dict:
     if new == old or new.startswith(old.rstrip(os.sep) + os.sep) or old.startswith(new.rstrip(os.sep) + os.sep):
         raise RootError(f"{old} and {new} overlap; give the folder's new place outside its old one")
     with archive._writer_lock():
-        doubled = catalog.ids_taken_after_rename(old, new)
-        _drop(archive, doubled)
-        moved = catalog.rename_root(old, new)
+        moved, doubled = _repoint(archive, old, new)
     found = not_found = 0
     where, args = under_clause("path", new)
     for path, size in catalog.db.execute(f"select path, size from images where {where}", args):
@@ -127,8 +125,29 @@ def rename(archive, old: str, new: str) -> dict:
             found += 1
         else:
             not_found += 1
-    return {"old": old, "new": new, "renamed": moved, "dropped_doubles": len(doubled),
+    return {"old": old, "new": new, "renamed": moved, "dropped_doubles": doubled,
             "found": found, "not_found": not_found}
+
+
+def _repoint(archive, old: str, new: str) -> tuple[int, int]:
+    """Rows below `old` moved below `new` (the caller holds the writer lock); rows whose new path is
+    already catalogued are dropped as doubles. Returns (rows re-pointed, doubles dropped)."""
+    doubled = archive.catalog.ids_taken_after_rename(old, new)
+    _drop(archive, doubled)
+    return archive.catalog.rename_root(old, new), len(doubled)
+
+
+def adopt_resolved_roots(archive) -> int:
+    """Roots recorded through a link (by versions that did not resolve them) re-pointed to their real
+    path: the same files, so nothing is embedded again, and a folder indexed both through a link and
+    directly keeps one row per file. The caller holds the writer lock."""
+    moved = 0
+    for root in outermost(archive.catalog.known_roots()):
+        real = os.path.realpath(root)
+        overlap = real.startswith(root.rstrip(os.sep) + os.sep) or root.startswith(real.rstrip(os.sep) + os.sep)
+        if real != root and os.path.exists(root) and not overlap:
+            moved += _repoint(archive, root, real)[0]
+    return moved
 
 
 def forget(archive, root: str, *, even_if_present: bool = False) -> dict:

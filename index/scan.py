@@ -130,7 +130,8 @@ def _link_to_catalogue(path: str, errors: list[dict], inside, skipped) -> bool:
 
 def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[str, dict]], folders: set[str],
                    roots: list[str], failures: dict[str, dict],
-                   rows_with_size: Callable[[int], list[dict]] | None = None) -> ChangeSet:
+                   size_known: Callable[[int], bool] | None = None,
+                   rows_with_hash: Callable[[str], list[dict]] | None = None) -> ChangeSet:
     """Compare what is on disk with what the catalog holds below the same roots.
 
     The walk yields each folder's files together, so only one folder's catalog rows are in memory at
@@ -139,7 +140,8 @@ def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[s
     rows_in_folder(folder): the catalog rows directly in a folder; folders: every folder the catalog
     holds rows in below the roots (catalog.folders_under). Only rows below the roots take part, but
     a new file may also be a row elsewhere whose file is gone (a folder moved from another root, or
-    from a root that no longer exists): rows_with_size(size) finds those candidates.
+    from a root that no longer exists): size_known(size) says whether any row has that size (only
+    then is the new file hashed), rows_with_hash(sha256) gives the rows with that content.
     """
     cs = ChangeSet()
     unknown, missing = [], []
@@ -160,7 +162,8 @@ def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[s
             missing.extend(row for path, row in rows.items() if path not in seen)
     for folder in sorted(folders - visited):  # folders the catalog knows and the walk did not reach
         missing.extend(r for p, r in rows_in_folder(folder).items() if under(p))
-    _match_moves(unknown, missing, cs, rows_with_size, under)
+    elsewhere = (size_known, rows_with_hash, under) if size_known and rows_with_hash else None
+    _match_moves(unknown, missing, cs, elsewhere)
     cs.gone_failures = [p for p in failures if p not in seen_failures]
     return cs
 
@@ -190,29 +193,37 @@ def _compare(f: dict, row: dict | None, failures: dict[str, dict], cs: ChangeSet
             cs.changed.append((row["id"], f))
 
 
-def _match_moves(unknown: list[dict], missing: list[dict], cs: ChangeSet,
-                 rows_with_size: Callable[[int], list[dict]] | None = None,
-                 under: Callable[[str], bool] | None = None) -> None:
+def _match_moves(unknown: list[dict], missing: list[dict], cs: ChangeSet, elsewhere=None) -> None:
     """A new path whose content hash equals a vanished row's is that row, moved: a row below the
-    roots that the walk did not find, or a row elsewhere whose file no longer exists."""
+    roots that the walk did not find, or (elsewhere: size_known, rows_with_hash, under) a row outside
+    the roots whose file no longer exists."""
     by_size = defaultdict(list)
     for row in missing:
         by_size[row["size"]].append(row)
     claimed: dict[int, dict] = {}
     for f in unknown:
-        candidates = [r for r in by_size.get(f["size"], ()) if r["id"] not in claimed]
-        if rows_with_size is not None:
-            candidates += [r for r in rows_with_size(f["size"]) if r["id"] not in claimed
-                           and not (under and under(r["path"])) and not os.path.lexists(r["path"])]
-        if candidates:  # only hash new files that could be a move: same size
+        here = [r for r in by_size.get(f["size"], ()) if r["id"] not in claimed]
+        there = elsewhere is not None and elsewhere[0](f["size"])
+        if here or there:  # only hash new files that could be a move: same size
             f["sha256"] = _hash_or_none(f["path"])
-            match = next((r for r in candidates if f["sha256"] and r["sha256"] == f["sha256"]), None)
+            match = _moved_row(f, here, elsewhere if there else None, claimed)
             if match is not None:
                 claimed[match["id"]] = f
                 cs.moved.append((match["id"], f))
                 continue
         cs.new.append(f)
     cs.removed = [row["id"] for row in missing if row["id"] not in claimed]
+
+
+def _moved_row(f: dict, here: list[dict], elsewhere, claimed: dict) -> dict | None:
+    if not f["sha256"]:
+        return None
+    match = next((r for r in here if r["sha256"] == f["sha256"]), None)
+    if match is None and elsewhere is not None:
+        _, rows_with_hash, under = elsewhere
+        match = next((r for r in rows_with_hash(f["sha256"]) if r["size"] == f["size"] and r["id"] not in claimed
+                      and not under(r["path"]) and not os.path.lexists(r["path"])), None)
+    return match
 
 
 def _hash_or_none(path: str) -> str | None:

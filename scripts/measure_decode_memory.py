@@ -1,4 +1,5 @@
-"""Peak memory of one decode, as a decode worker does it, in a fresh process (VmHWM from /proc).
+"""Peak memory of one file read as a decode worker reads it (index.reader.read_file: hash, decode at
+reduced size, resize), in a fresh process: VmHWM from /proc, less its value after the imports.
 
     .venv/bin/python scripts/measure_decode_memory.py                    # this tree
     .venv/bin/python scripts/measure_decode_memory.py --tree /path/to/other/checkout   # side by side
@@ -30,7 +31,7 @@ def hwm():
             return int(line.split()[1]) * 1024
 import numpy
 from PIL import Image
-from index.decode import open_image
+from index.reader import read_file
 try:
     from index.decode_memory import estimate
 except ImportError:
@@ -41,8 +42,8 @@ if estimate is not None:
     with Image.open(path) as im:
         est = estimate(im, min_side)
 base = hwm()
-image = open_image(path, min_side=min_side).image
-print(json.dumps({"base": base, "peak": hwm(), "estimate": est, "size": image.size}))
+result = read_file(path, 256)  # what a decode worker does with each file (hash, decode, resize)
+print(json.dumps({"base": base, "peak": hwm(), "estimate": est, "ok": "pixels" in result}))
 """
 
 
@@ -71,18 +72,20 @@ def measure(tree: str, path: Path, min_side: int) -> dict:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--tree", action="append", default=[], help="another checkout to measure side by side")
-    parser.add_argument("--min-side", type=int, default=384, help="as the indexer decodes (384 for a 256 input)")
+    parser.add_argument("--min-side", type=int, default=384, help="for the estimate: what read_file decodes at "
+                        "for a 256 input")
     args = parser.parse_args()
     trees = [str(Path(__file__).resolve().parent.parent)] + args.tree
     with tempfile.TemporaryDirectory() as tmp:
         images = make_images(Path(tmp))
-        print(f"{'image':<12} {'on disk':>8}  {'tree':<40} {'estimate MB':>11} {'peak growth MB':>14}")
+        print(f"{'image':<12} {'on disk':>8}  {'tree':<40} {'estimate MB':>11} {'peak growth MB':>14} "
+              f"{'process peak MB':>15}")
         for name, path in images.items():
             for tree in trees:
                 r = measure(tree, path, args.min_side)
                 est = "-" if r["estimate"] is None else f"{r['estimate'] / 1e6:.0f}"
                 print(f"{name:<12} {path.stat().st_size / 1e6:>6.2f}MB  {tree[-40:]:<40} {est:>11} "
-                      f"{(r['peak'] - r['base']) / 1e6:>14.0f}")
+                      f"{(r['peak'] - r['base']) / 1e6:>14.0f} {r['peak'] / 1e6:>15.0f}")
 
 
 if __name__ == "__main__":

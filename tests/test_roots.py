@@ -211,3 +211,29 @@ def test_the_server_shows_only_the_file_the_catalog_describes(tmp_path):
     client = create_app({"KINSCOPE_DB": str(tmp_path / "db"), "TESTING": True}).test_client()
     bad = client.get(f"/media/items/{rows['img-0-0.png']['id']}/image")
     assert bad.status_code == 400 and "outside the indexed folders" in bad.get_json()["error"]
+
+
+def test_rows_recorded_through_a_link_by_earlier_versions_are_adopted(tmp_path, monkeypatch):
+    """Earlier versions kept a root given through a link as typed; a catalog with a folder indexed both
+    ways held every file twice. The next run keeps one row per file, at its real path."""
+    archive = _new(tmp_path, "real")
+    os.symlink(tmp_path / "real", tmp_path / "ln")
+    real, ln = str(tmp_path / "real"), str(tmp_path / "ln")
+    ids, vectors = _vectors(archive)
+    archive.catalog.rename_root(real, ln)  # as an earlier version left it: rows below the link's path
+    run = archive.catalog.start_run([real])  # ... and the same files indexed again directly
+    doubles = archive.catalog.insert_pending(
+        [{"path": os.path.join(real, r["path"][len(ln) + 1:]), "size": r["size"], "mtime": r["mtime"]}
+         for r in archive.catalog.db.query("select * from images")], run)
+    archive.catalog.set_status(doubles, "ok")
+    writer = archive._writer("colour")
+    writer.add(np.array(doubles), vectors)
+    archive._save_stores()
+    assert archive.info()["images"] == 8
+    _no_embedding(monkeypatch)
+    report = archive.add([tmp_path / "ln"], progress=False)
+    assert (report["new"], report["embedded"], report["unchanged"]) == (0, 0, 4)
+    paths = [r["path"] for r in archive.catalog.db.query("select path from images")]
+    assert len(paths) == 4 and all(p.startswith(real + os.sep) for p in paths)
+    assert archive.roots() == [{"root": real, "rows": 4, "state": "present"}]
+    assert archive.check()["ok"]
