@@ -22,7 +22,7 @@ from . import media
 from .exemplars import Exemplars
 from .pipeline import Job, configure_threads, cores, run
 from .pooling import PCAWhitening
-from .roots import gone_roots, missing_root_message
+from .roots import adopt_resolved_roots, gone_roots, missing_root_message
 from .scan import below, diff_by_folder, normalize_roots, walk, walk_roots
 from .search import nearest, row_filter
 from .layer_store import LayerStore
@@ -363,13 +363,15 @@ class Archive:
             self._writer(layer).remove_leftovers()
         self.reconcile()
         self.catalog.prepare_for_writing()
+        adopt_resolved_roots(self)  # roots recorded through a link by earlier versions: same files
         run_id = self.catalog.start_run(roots)
         errors: list[dict] = []
         self._skipped: list[dict] = []  # links to outside the roots, database folders: not indexed
         # Folder by folder: the catalog rows of one folder in memory at a time, not the archive's.
         files = walk(walk_roots(roots), errors, self._skipped, exclude=(os.path.realpath(self.db),))
         cs = diff_by_folder(files, self.catalog.rows_in_folder, self.catalog.folders_under(roots), roots,
-                            self.catalog.failures_under(roots), rows_with_size=self.catalog.rows_with_size)
+                            self.catalog.failures_under(roots), size_known=self.catalog.size_known,
+                            rows_with_hash=self.catalog.rows_with_hash)
         gone = np.array(cs.removed + [i for i, _ in cs.changed], np.int64)
         removed = sum(self._writer(layer).remove(gone) for layer in self.layer_names)
         self.catalog.delete_images(cs.removed)
