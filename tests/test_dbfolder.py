@@ -33,7 +33,9 @@ def indexed(tmp_path_factory):
     """A small archive to copy: (images folder, database folder)."""
     root = tmp_path_factory.mktemp("dbfolder")
     imgs = _folder(root / "imgs", 6)
-    Archive.open(root / "db", create=True, layers=["colour"]).add([imgs], progress=False)
+    with Archive.open(root / "db", create=True, layers=["colour"]) as archive:
+        archive.add([imgs], progress=False)
+    assert not (root / "db" / "catalog.sqlite-wal").exists()  # closed: the whole catalog is in its file
     return imgs, root / "db"
 
 
@@ -273,7 +275,8 @@ def test_impossible_dates_are_refused(indexed, tmp_path):
     for value in ("2026-13-45", "2026-02-30", "2026-1-1"):
         response = client.get(f"/api/search?item=1&layer=colour&date_from={value}")
         assert response.status_code == 400 and "date_from" in response.get_json()["error"], value
-        assert "is not a real date" in response.get_json()["error"], value  # params.date, before any search
+        if value != "2026-1-1":  # (that one is refused by its form already)
+            assert "is not a real date" in response.get_json()["error"], value  # params.date, before any search
     assert client.get("/api/search?item=1&layer=colour&date_to=2026-02-28").status_code == 200
     with pytest.raises(ArchiveError, match="real date"):
         Archive.open(db).search(1, layer="colour", date_from="2026-13-45")
