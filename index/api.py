@@ -22,7 +22,7 @@ from . import media
 from .exemplars import Exemplars
 from .pipeline import Job, configure_threads, cores, run
 from .pooling import PCAWhitening
-from .roots import adopt_resolved_roots, gone_roots, missing_root_message
+from .roots import adopt_resolved_roots, drop_empty_gone_roots, gone_roots, missing_root_message
 from .scan import below, diff_by_folder, normalize_roots, walk, walk_roots
 from .search import nearest, row_filter
 from .layer_store import LayerStore
@@ -380,6 +380,7 @@ class Archive:
             + [(i, {"path": f["path"], "size": f["size"], "mtime": f["mtime"]}) for i, f in cs.moved]
             + [(i, {"size": f["size"], "mtime": f["mtime"], "status": "pending"}) for i, f in cs.changed]
         )
+        drop_empty_gone_roots(self.catalog)
         self.catalog.clear_failures(cs.gone_failures + [f["path"] for f in cs.new])
         self.catalog.record_failures([{**e, "size": None, "mtime": None} for e in errors], run_id)
         self.catalog.insert_pending(cs.new, run_id)

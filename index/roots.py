@@ -137,6 +137,14 @@ def _repoint(archive, old: str, new: str) -> tuple[int, int]:
     return archive.catalog.rename_root(old, new), len(doubled)
 
 
+def drop_empty_gone_roots(catalog) -> None:
+    """Roots that no longer exist and hold no row (every file was found elsewhere by its content)
+    leave the list of roots."""
+    for root in catalog.known_roots():
+        if not os.path.exists(root) and catalog.count_under(root) == 0:
+            catalog.forget_root(root)
+
+
 def adopt_resolved_roots(archive) -> int:
     """Roots recorded through a link (by versions that did not resolve them) re-pointed to their real
     path: the same files, so nothing is embedded again, and a folder indexed both through a link and

@@ -131,7 +131,8 @@ def test_a_renamed_root_indexed_under_its_new_name_is_matched_by_content(tmp_pat
     report = archive.add([tmp_path / "photos"], progress=False)
     assert (report["moved"], report["new"], report["embedded"]) == (4, 0, 0)
     assert np.array_equal(_vectors(archive)[0], ids_before)
-    assert report["gone_roots"] == {}  # the old root holds no rows any more
+    assert report["gone_roots"] == {}  # the old root holds no rows any more ...
+    assert archive.roots() == [{"root": str(tmp_path / "photos"), "rows": 4, "state": "present"}]  # ... nor is listed
     assert archive.info()["images"] == 4
 
 
