@@ -16,12 +16,14 @@ from PIL import Image
 from . import manifest as mf
 from .backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone, BackboneError, get_backbone
 from .catalog import Catalog
+from .dbfolder import CatalogProblem, damaged_message, open_catalog
 from .decode import DecodeError, open_image
 from . import media
 from .exemplars import Exemplars
 from .pipeline import Job, configure_threads, cores, run
 from .pooling import PCAWhitening
-from .scan import diff_by_folder, normalize_roots, walk, walk_roots
+from .roots import adopt_resolved_roots, drop_empty_gone_roots, gone_roots, missing_root_message
+from .scan import below, diff_by_folder, normalize_roots, walk, walk_roots
 from .search import nearest, row_filter
 from .layer_store import LayerStore
 from .segments import StoreFileError, assemble, update
@@ -42,10 +44,10 @@ class ArchiveError(Exception):
 class Archive:
     """One database folder: catalog.sqlite, one FAISS index per layer, manifest.json."""
 
-    def __init__(self, db: Path, manifest: dict):
+    def __init__(self, db: Path, manifest: dict, catalog: Catalog | None = None):
         self.db = Path(db)
         self.manifest = manifest
-        self.catalog = Catalog(self.db / "catalog.sqlite")
+        self.catalog = catalog if catalog is not None else Catalog(self.db / "catalog.sqlite")
         self._backbone: Backbone | None = None
         self._embedder = None
         self._stores: dict[str, VectorStore] = {}  # readers: every segment in one FAISS index
@@ -65,10 +67,13 @@ class Archive:
         gem_p: float | None = None,
         whiten: bool | None = None,
         weights: str | os.PathLike | None = None,
+        lenient: bool = False,
     ) -> "Archive":
         """Open the archive in folder `db`; with create=True, make it if absent.
 
-        Settings given for an existing archive must match what it was built with.
+        Settings given for an existing archive must match what it was built with. A missing or
+        damaged catalog is refused (lenient=True: a damaged one is opened for `check` to report);
+        a database folder this process cannot write is opened read-only (search, info, serve).
         """
         db = Path(db)
         try:
@@ -97,7 +102,10 @@ class Archive:
                 f"{db} was built with other settings:\n  " + "\n  ".join(problems)
                 + "\nUse a new --db folder for these settings, or leave them out to use the archive's own."
             )
-        return cls(db, manifest)
+        try:
+            return cls(db, manifest, open_catalog(db, manifest, lenient=lenient))
+        except CatalogProblem as exc:
+            raise ArchiveError(str(exc)) from None
 
     @classmethod
     def _new_manifest_apart(cls, db, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
@@ -323,9 +331,16 @@ class Archive:
         try:
             roots = normalize_roots(paths)
         except FileNotFoundError as exc:
-            raise ArchiveError(str(exc)) from None
+            raise ArchiveError(missing_root_message(self, paths, str(exc))) from None
         if not roots:
             raise ArchiveError("give at least one file or folder to index")
+        inside_db = below([os.path.realpath(self.db)])
+        if any(inside_db(r) for r in roots):
+            raise ArchiveError(f"{next(r for r in roots if inside_db(r))} is inside the database folder {self.db}; "
+                               "index the archive's folders, not the database")
+        sound = self.catalog.quick_check()  # never write into a damaged catalog
+        if sound != "ok":
+            raise ArchiveError(damaged_message(self.db, sound.splitlines()[0]))
         self._cluster = cluster
         file_timeout = DEFAULT_FILE_TIMEOUT if file_timeout is None else (float(file_timeout) or None)
         with self._writer_lock():
@@ -347,11 +362,16 @@ class Archive:
         for layer in self.layer_names:  # files an interrupted run wrote but never committed
             self._writer(layer).remove_leftovers()
         self.reconcile()
+        self.catalog.prepare_for_writing()
+        adopt_resolved_roots(self)  # roots recorded through a link by earlier versions: same files
         run_id = self.catalog.start_run(roots)
         errors: list[dict] = []
+        self._skipped: list[dict] = []  # links to outside the roots, database folders: not indexed
         # Folder by folder: the catalog rows of one folder in memory at a time, not the archive's.
-        cs = diff_by_folder(walk(walk_roots(roots), errors), self.catalog.rows_in_folder,
-                            self.catalog.folders_under(roots), roots, self.catalog.failures_under(roots))
+        files = walk(walk_roots(roots), errors, self._skipped, exclude=(os.path.realpath(self.db),))
+        cs = diff_by_folder(files, self.catalog.rows_in_folder, self.catalog.folders_under(roots), roots,
+                            self.catalog.failures_under(roots), size_known=self.catalog.size_known,
+                            rows_with_hash=self.catalog.rows_with_hash)
         gone = np.array(cs.removed + [i for i, _ in cs.changed], np.int64)
         removed = sum(self._writer(layer).remove(gone) for layer in self.layer_names)
         self.catalog.delete_images(cs.removed)
@@ -360,6 +380,7 @@ class Archive:
             + [(i, {"path": f["path"], "size": f["size"], "mtime": f["mtime"]}) for i, f in cs.moved]
             + [(i, {"size": f["size"], "mtime": f["mtime"], "status": "pending"}) for i, f in cs.changed]
         )
+        drop_empty_gone_roots(self.catalog)
         self.catalog.clear_failures(cs.gone_failures + [f["path"] for f in cs.new])
         self.catalog.record_failures([{**e, "size": None, "mtime": None} for e in errors], run_id)
         self.catalog.insert_pending(cs.new, run_id)
@@ -415,7 +436,8 @@ class Archive:
         self.catalog.finish_run(run_id, "interrupted" if interrupted else "done", report)
         speed = {"engine": counts.engine, "seconds": round(counts.seconds, 3), "peak_rss": counts.peak_rss,
                  "peak_rss_workers": counts.peak_rss_workers} if counts else {}
-        return {**report, "run_id": run_id, "interrupted": interrupted, "known_failures": cs.known_failures, **speed}
+        return {**report, "run_id": run_id, "interrupted": interrupted, "known_failures": cs.known_failures, **speed,
+                "skipped": self._skipped, "gone_roots": gone_roots(self.catalog)}
 
     def _indexing_embedder(self, choice: str, images: int):
         """What embeds the images of a run: the cached ONNX model without torch when the engine choice
@@ -481,7 +503,8 @@ class Archive:
         report = {**cs.counts(), "embedded": counts.embedded, "failed": failed}
         self.catalog.finish_run(run_id, "interrupted" if counts.interrupted else "done", report)
         return {**report, "run_id": run_id, "interrupted": counts.interrupted, "known_failures": cs.known_failures,
-                "engine": counts.engine, "seconds": round(counts.seconds, 3)}
+                "engine": counts.engine, "seconds": round(counts.seconds, 3),
+                "skipped": self._skipped, "gone_roots": gone_roots(self.catalog)}
 
     def _save_stores(self) -> None:
         """Checkpoint: every layer's changes written to new files, then the manifest naming them (the
@@ -611,11 +634,15 @@ class Archive:
             if not isinstance(value, (int, np.integer)) or value < (1 if label == "k" else 0):
                 raise ArchiveError(f"{label} must be a {'positive' if label == 'k' else 'non-negative'} whole number, got {value!r}")
         name = self._layer(layer)["name"]
+        try:
+            accept = row_filter(folder, date_from, date_to)
+        except ValueError as exc:
+            raise ArchiveError(str(exc)) from None
         vector = self.describe(query, name, box)
         by_id = isinstance(query, (int, np.integer))
         exclude = int(query) if by_id and box is None else None
         results, more = nearest(self.store(name), self.catalog, vector, int(k), exclude=exclude, offset=int(offset),
-                                accept=row_filter(folder, date_from, date_to))
+                                accept=accept)
         if by_id:
             q = {"id": int(query), "path": self.item(int(query))["path"]}
         elif isinstance(query, (str, os.PathLike)):
@@ -680,9 +707,15 @@ class Archive:
         return self._image_call(media.patch, item_id, box)
 
     def _image_call(self, fn, item_id, *args):
+        """Images are made only from the catalogued file itself (media.checked_file): inside the
+        indexed roots, with the catalog's size and date."""
         row = self.item(item_id)
+        roots = [os.path.realpath(r) for r in self.catalog.known_roots()]
         try:
-            return fn(row, *args)
+            with media.checked_file(row, roots) as fh:
+                return fn(row, *args, source=fh)
+        except media.Unservable as exc:
+            raise ArchiveError(f"item {item_id} can no longer be read: {exc}") from None
         except DecodeError as exc:
             raise ArchiveError(f"item {item_id} can no longer be read: {exc.reason}") from None
         except OSError as exc:
@@ -701,6 +734,31 @@ class Archive:
         except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
 
+    # --- roots ------------------------------------------------------------------------------
+    def roots(self) -> list[dict]:
+        """The folders (or files) runs were given: [{root, rows, state}] (see index/roots.py)."""
+        from .roots import listing
+
+        return listing(self)
+
+    def rename_root(self, old: str, new: str) -> dict:
+        """Re-point the rows below a root that moved to where it went; descriptors kept."""
+        from .roots import RootError, rename
+
+        try:
+            return rename(self, old, new)
+        except RootError as exc:
+            raise ArchiveError(str(exc)) from None
+
+    def forget_root(self, root: str, *, even_if_present: bool = False) -> dict:
+        """Drop the rows below a root and their descriptors (files untouched)."""
+        from .roots import RootError, forget
+
+        try:
+            return forget(self, root, even_if_present=even_if_present)
+        except RootError as exc:
+            raise ArchiveError(str(exc)) from None
+
     # --- verification ---------------------------------------------------------------------
     def check(self) -> dict:
         """Verify catalog, stores, manifest and files; read-only. {'ok', 'checked', 'findings'}."""
@@ -710,9 +768,12 @@ class Archive:
 
     def repair(self, *, progress: bool = True) -> dict:
         """Fix what `check` finds: orphans and temporary files removed, missing descriptors re-embedded."""
-        from .check import repair
+        from .check import RepairRefused, repair
 
-        return repair(self, progress=progress)
+        try:
+            return repair(self, progress=progress)
+        except RepairRefused as exc:
+            raise ArchiveError(str(exc)) from None
 
     # --- reporting --------------------------------------------------------------------------
     def info(self) -> dict:

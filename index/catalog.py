@@ -37,12 +37,37 @@ def now() -> str:
 
 
 class Catalog:
-    def __init__(self, path: Path):
+    """mode: "create" makes the file and its tables when absent (a new archive); "write" opens an
+    existing file only (never an empty catalog beside existing stores); "read" never writes (a
+    read-only database folder: SQLite read-only mode, or immutable when no journal is pending)."""
+
+    def __init__(self, path: Path, *, mode: str = "create"):
+        uri = _uri(Path(path), mode)
         # One connection, usable from the web server's threads (the web layer serialises calls).
-        self.db = sqlite_utils.Database(sqlite3.connect(str(path), check_same_thread=False))
-        self.db.execute("PRAGMA journal_mode=WAL")  # readers see the last commit while indexing runs
+        self.db = sqlite_utils.Database(sqlite3.connect(uri, uri=True, check_same_thread=False))
+        self.read_only = mode == "read"
+        self.damage: str | None = None  # set by dbfolder.open_catalog(lenient=True) for `check`
+        if not self.read_only:
+            self.db.execute("PRAGMA journal_mode=WAL")  # readers see the last commit while indexing runs
         self.db.execute("PRAGMA busy_timeout=10000")
+        if mode == "create":
+            self._create()
+
+    def quick_check(self) -> str:
+        """SQLite's own check of every page ("ok" when sound); reads the whole file."""
+        try:
+            return str(self.db.execute("PRAGMA quick_check").fetchone()[0])
+        except sqlite3.DatabaseError as exc:
+            return str(exc)
+
+    def tables(self) -> set[str]:
+        return set(self.db.table_names())
+
+    def prepare_for_writing(self) -> None:
+        """The indexer's schema: tables missing from an older catalog, and the size index that
+        matching moves across roots needs."""
         self._create()
+        self.db.execute("create index if not exists idx_images_size on images(size)")
 
     def _create(self) -> None:
         db = self.db
@@ -183,6 +208,79 @@ class Catalog:
         rows = list(self.db.query("select * from images where path = ?", [path]))
         return rows[0] if rows else None
 
+    def size_known(self, size: int) -> bool:
+        """Does any row have a file of this size? (a new file of that size may be a moved one)"""
+        return self.db.execute("select 1 from images where size = ? limit 1", [size]).fetchone() is not None
+
+    def rows_with_hash(self, sha256: str) -> list[dict]:
+        """Rows of files with this content hash (candidates for a move detected by content)."""
+        q = "select id, path, size, mtime, sha256, status from images where sha256 = ?"
+        return list(self.db.query(q, [sha256]))
+
+    def iter_paths(self, chunk: int = 10_000):
+        """(id, path) of every image row, a chunk of rows in memory at a time."""
+        last = -1
+        while True:
+            rows = self.db.execute("select id, path from images where id > ? order by id limit ?", [last, chunk]).fetchall()
+            if not rows:
+                return
+            yield from rows
+            last = rows[-1][0]
+
+    # --- roots: the folders (or files) earlier runs were given --------------------------------
+    def known_roots(self) -> list[str]:
+        roots: set[str] = set()
+        for row in self.db.query("select roots from runs"):
+            roots.update(json.loads(row["roots"] or "[]"))
+        return sorted(roots)
+
+    def count_under(self, root: str) -> int:
+        where, args = under_clause("path", root)
+        return self.db.execute(f"select count(*) from images where {where}", args).fetchone()[0]
+
+    def ids_under(self, root: str) -> list[int]:
+        where, args = under_clause("path", root)
+        return [r[0] for r in self.db.execute(f"select id from images where {where}", args).fetchall()]
+
+    def ids_taken_after_rename(self, old: str, new: str) -> list[int]:
+        """Rows below `old` whose path under `new` another row already has (catalogued twice)."""
+        where, args = under_clause("a.path", old)
+        q = (f"select a.id from images a where {where} and exists "
+             "(select 1 from images b where b.path = ? || substr(a.path, ?))")
+        return [r[0] for r in self.db.execute(q, [*args, new, len(old) + 1]).fetchall()]
+
+    def rename_root(self, old: str, new: str) -> int:
+        """Every row and failure below `old` now lies below `new` (same ids); the runs' roots follow.
+        Rows whose new path is taken must have been deleted first (ids_taken_after_rename)."""
+        n = len(old) + 1
+        where, args = under_clause("path", old)
+        with self.db.conn:
+            count = self.db.execute(f"select count(*) from images where {where}", args).fetchone()[0]
+            self.db.execute("update images set path = ?, folder = ?, name = ? where path = ?",
+                            [new, os.path.dirname(new), os.path.basename(new), old])  # a file root
+            self.db.execute(f"update images set path = ? || substr(path, ?), folder = ? || substr(folder, ?) "
+                            f"where {where}", [new, n, new, n, *args])
+            self.db.execute(f"delete from failures where {where} and ? || substr(path, ?) in "
+                            "(select path from failures)", [*args, new, n])
+            self.db.execute(f"update failures set path = ? || substr(path, ?) where {where}", [new, n, *args])
+            self._rewrite_run_roots(lambda r: new + r[len(old):] if _is_under(r, old) else r)
+        return count
+
+    def forget_root(self, root: str) -> None:
+        """Failures below `root` dropped and the root taken out of the runs' roots (image rows are
+        deleted by the caller, which also takes their descriptors out of the stores)."""
+        where, args = under_clause("path", root)
+        with self.db.conn:
+            self.db.execute(f"delete from failures where {where}", args)
+            self._rewrite_run_roots(lambda r: None if _is_under(r, root) else r)
+
+    def _rewrite_run_roots(self, fn) -> None:
+        for run_id, raw in self.db.execute("select id, roots from runs").fetchall():
+            roots = json.loads(raw or "[]")
+            changed = [r for r in (fn(r) for r in roots) if r is not None]
+            if changed != roots:
+                self.db.execute("update runs set roots = ? where id = ?", [json.dumps(changed), run_id])
+
     # --- failures ---------------------------------------------------------------------------
     def failures_under(self, roots: Iterable[str]) -> dict[str, dict]:
         out = {}
@@ -226,6 +324,34 @@ class Catalog:
 
     def close(self) -> None:
         self.db.close()
+
+
+def _is_under(path: str, root: str) -> bool:
+    return path == root or path.startswith(root.rstrip(os.sep) + os.sep)
+
+
+def under_clause(column: str, root: str) -> tuple[str, list]:
+    """SQL for "column is root or lies below it" (no LIKE: paths may hold % and _)."""
+    prefix = root.rstrip(os.sep) + os.sep
+    return f"({column} = ? or substr({column}, 1, ?) = ?)", [root, len(prefix), prefix]
+
+
+def _uri(path: Path, mode: str) -> str:
+    base = path.absolute().as_uri()
+    if mode == "create":
+        return base + "?mode=rwc"
+    if mode == "write":
+        return base + "?mode=rw"
+    wal, shm = Path(f"{path}-wal"), Path(f"{path}-shm")
+    if not wal.exists() or wal.stat().st_size == 0:
+        return base + "?mode=ro&immutable=1"  # nothing pending in a journal: the file is the whole catalog
+    if shm.exists():
+        return base + "?mode=ro"  # SQLite reads the journal through the existing shared-memory file
+    raise PendingJournal(str(wal))
+
+
+class PendingJournal(Exception):
+    """A read-only catalog whose journal (-wal) holds changes SQLite cannot apply without writing."""
 
 
 def _chunks(items: list, n: int):

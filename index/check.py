@@ -4,6 +4,7 @@ from __future__ import annotations
 import fcntl
 import json
 import os
+import sqlite3
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -39,33 +40,79 @@ class Report:
 
 
 def check(archive) -> Report:
-    """Read-only: nothing is changed. See repair() for the fixes."""
+    """Read-only: nothing is changed. See repair() for the fixes.
+
+    While an indexer runs, only committed state is compared (the manifest read before and after the
+    catalog and the store files, until both agree) and no fix is offered for the run in progress."""
     report = Report()
+    if archive.catalog.damage:
+        report.checked["sqlite"] = archive.catalog.damage
+        report.add("error", f"the SQLite catalog is damaged: {archive.catalog.damage}", DAMAGED_FIX)
+        return report
+    try:
+        _check_catalog_and_stores(archive, report)
+    except sqlite3.DatabaseError as exc:
+        report.add("error", f"the SQLite catalog is damaged: {exc}", DAMAGED_FIX)
+    return report
+
+
+DAMAGED_FIX = "restore catalog.sqlite from a backup; the vector stores alone cannot rebuild it"
+RUNNING_FIX = "an indexer is running on this database: run `kinscope check` again when it has finished"
+
+
+def _check_catalog_and_stores(archive, report: Report) -> None:
     db = archive.db
     result = archive.catalog.db.execute("PRAGMA integrity_check").fetchone()[0]
     report.checked["sqlite"] = result
     if result != "ok":
-        report.add("error", f"the SQLite catalog is damaged: {result}",
-                   "restore catalog.sqlite from a backup; the vector stores alone cannot rebuild it")
-    ok_ids = np.array(archive.catalog.ids_with_status("ok"), np.int64)
-    pending = archive.catalog.ids_with_status("pending")
+        report.add("error", f"the SQLite catalog is damaged: {result}", DAMAGED_FIX)
+        return
+    running = _indexer_running(archive)
+    ok_ids, pending = _consistent_state(archive, report, running)
     report.checked["images"] = int(len(ok_ids))
-    if pending:
+    if pending and running:
+        report.add("info", f"an indexer is running: {len(pending)} images are waiting for descriptors", count=len(pending))
+    elif pending:
         report.add("warning", f"{len(pending)} images are waiting for descriptors (an interrupted run)",
                    "run `kinscope index` again, or `kinscope check --repair`", len(pending))
-    for layer in archive.manifest["layers"]:
-        _check_layer(archive, layer, ok_ids, report)
     for learned in archive.manifest["whitening"]["learned"].values():
         if not (db / learned["file"]).exists():
             report.add("error", f"the whitening file {learned['file']} named in the manifest is missing",
                        "rebuild the archive: its descriptors cannot be whitened again without it")
-    temps = _temporary_files(db)
+    temps = [] if running else _temporary_files(db)  # an indexer's writes in flight are not leftovers
     if temps:
         report.add("warning", f"{len(temps)} temporary files left by an interrupted write", "`--repair` removes them",
                    len(temps))
     _check_leftovers(archive, report)
+    _check_missing_files(archive, report, running)
     _check_thumbnails(archive, ok_ids, report)
-    return report
+
+
+def _consistent_state(archive, report: Report, running: bool, attempts: int = 20):
+    """The catalog's ok and pending ids, with every layer checked against the same committed manifest.
+
+    An indexer saves the stores, then the manifest, then marks the catalog rows: a manifest that is the
+    same before and after reading the catalog and the store files names stores holding every row the
+    catalog had marked. Descriptors of rows not yet marked are the run's work in progress."""
+    for _ in range(attempts if running else 1):
+        if running:
+            archive._reread_manifest()
+        generation = archive.manifest.get("generation")
+        rows = archive.catalog.db.execute("select id, status from images").fetchall()
+        ok_ids = np.array(sorted(i for i, status in rows if status == "ok"), np.int64)
+        pending = [i for i, status in rows if status == "pending"]
+        layers = Report()
+        for layer in archive.manifest["layers"]:
+            _check_layer(archive, layer, ok_ids, layers, running)
+        if not running or (not archive._reread_manifest() and archive.manifest.get("generation") == generation):
+            for finding in layers.findings:
+                finding.fix = RUNNING_FIX if running and finding.fix else finding.fix
+            report.findings += layers.findings
+            report.checked.update(layers.checked)
+            return ok_ids, pending
+    report.add("info", "an indexer committed new work while its stores were being read, every time; "
+               "they were not compared", RUNNING_FIX)
+    return ok_ids, pending
 
 
 def _temporary_files(db: Path) -> list[Path]:
@@ -106,7 +153,7 @@ def _stored_ids(archive, layer: dict, report: Report) -> np.ndarray | None:
     return np.concatenate(parts) if parts else np.zeros(0, np.int64)
 
 
-def _check_layer(archive, layer: dict, ok_ids: np.ndarray, report: Report) -> None:
+def _check_layer(archive, layer: dict, ok_ids: np.ndarray, report: Report, running: bool = False) -> None:
     name = layer["name"]
     if not archive.manifest.get("stores", {}).get(name) and not (archive.db / layer["file"]).exists():
         if len(ok_ids):
@@ -122,8 +169,11 @@ def _check_layer(archive, layer: dict, ok_ids: np.ndarray, report: Report) -> No
     dupes = len(stored) - len(np.unique(stored))
     if len(missing):
         report.add("error", f"layer {name}: {len(missing)} indexed images have no descriptor",
-                   "`--repair` re-embeds just those", len(missing))
-    if len(extra):
+                   RUNNING_FIX if running else "`--repair` re-embeds just those", len(missing))
+    if len(extra) and running:  # saved by the indexer, not yet marked in the catalog: work in progress
+        report.add("info", f"layer {name}: {len(extra)} descriptors belong to images the running indexer has "
+                   "not committed yet", count=len(extra))
+    elif len(extra):
         report.add("error", f"layer {name}: {len(extra)} descriptors belong to no indexed image (orphans)",
                    "`--repair` removes them", len(extra))
     if dupes:
@@ -166,6 +216,25 @@ def _check_leftovers(archive, report: Report) -> None:
                    "`--repair` removes them, as does the next `kinscope index`", len(left))
 
 
+def _check_missing_files(archive, report: Report, running: bool) -> None:
+    """Rows whose files are gone: whole roots that vanished, and single files (one stat per row)."""
+    from .roots import missing
+
+    found = missing(archive)
+    db = archive.db
+    for root, count in found["gone_roots"].items():
+        report.add("warning", f"{count} catalogued images are below {root}, which no longer exists (or is empty)",
+                   f"if it moved: `kinscope roots rename {root} NEWPATH --db {db}` (nothing is embedded again); "
+                   f"if it is gone for good: `kinscope roots forget {root} --db {db}`", count)
+    n = len(found["ids"])
+    report.checked["missing files"] = n + sum(found["gone_roots"].values())
+    if n:
+        shown = ", ".join(found["paths"][:5]) + (f" and {n - 5} more" if n > 5 else "")
+        report.add("warning", f"{n} catalogued files are missing: {shown}",
+                   RUNNING_FIX if running else "`--repair` forgets them (their descriptors are dropped); "
+                   "or put the files back", n)
+
+
 def _check_thumbnails(archive, ok_ids: np.ndarray, report: Report) -> None:
     folder = archive.db / "thumbs"
     if not folder.is_dir():
@@ -177,10 +246,30 @@ def _check_thumbnails(archive, ok_ids: np.ndarray, report: Report) -> None:
                    "`--repair` removes them", len(orphans))
 
 
+def _unsound(result: str) -> str | None:
+    return None if result == "ok" else result.splitlines()[0]
+
+
+class RepairRefused(Exception):
+    """--repair would do harm; the message says why and what to do instead."""
+
+
 def repair(archive, *, progress: bool = True) -> dict:
-    """Fix what can be fixed without re-embedding, then re-embed only what must be."""
+    """Fix what can be fixed without re-embedding, then re-embed only what must be.
+
+    Files missing below roots that still exist are forgotten; a root that is gone entirely is left to
+    `kinscope roots rename/forget` (a disk not mounted must not cost its descriptors)."""
+    from .roots import forget_ids, missing
+
+    damage = archive.catalog.damage or _unsound(archive.catalog.quick_check())
+    if damage:
+        raise RepairRefused(f"the catalog is damaged ({damage}); --repair would lose descriptors. "
+                            f"{DAMAGED_FIX[0].upper()}{DAMAGED_FIX[1:]}; nothing was changed")
     with archive._writer_lock():  # no indexer may run meanwhile
         done = {"temporary_files": 0, "thumbnails": 0}
+        gone = missing(archive)["ids"]
+        if gone:
+            done["forgotten_missing"] = forget_ids(archive, gone)
         for p in _temporary_files(archive.db):
             p.unlink()
             done["temporary_files"] += 1

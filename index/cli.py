@@ -3,11 +3,14 @@ from __future__ import annotations
 
 import json
 import os
+import sqlite3
 import sys
 
 import click
 
 from .api import Archive, ArchiveError
+from .dbfolder import sqlite_message
+from .decode_memory import quiet_pillow_warnings
 from .backbones import DEFAULT_BACKBONE, NAMES
 from .vector_index import type_name
 
@@ -35,7 +38,27 @@ def _layers(value: str | None) -> list[str] | None:
     return [v.strip() for v in value.split(",") if v.strip()] if value else None
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+class _Main(click.Group):
+    """Every command: an SQLite error that gets past a command's own handling is one plain line too."""
+
+    def invoke(self, ctx):
+        db = _db_argument(list(ctx.args))  # (click empties ctx.args while it runs the command)
+        try:
+            return super().invoke(ctx)
+        except sqlite3.Error as exc:
+            _fail(sqlite_message(db, exc))
+
+
+def _db_argument(args: list[str]) -> str | None:
+    for i, arg in enumerate(args):
+        if arg == "--db" and i + 1 < len(args):
+            return args[i + 1]
+        if arg.startswith("--db="):
+            return arg[5:]
+    return None
+
+
+@click.group(cls=_Main, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(package_name="kinscope")
 def main() -> None:
     """Index image archives by the layers of a pretrained network, and search them by example.
@@ -44,10 +67,11 @@ def main() -> None:
     in the archive (it moves them only for `duplicates --move-to DIR --apply`, and `restore` puts them
     back). A similarity score is evidence for a person to review, not a verdict.
     """
+    quiet_pillow_warnings()  # decoders' warnings are recorded with the file, never printed
 
 
 @main.command("index")
-@click.argument("paths", nargs=-1, required=True, type=click.Path(exists=True))
+@click.argument("paths", nargs=-1, required=True, type=click.Path())
 @click.option("--db", required=True, type=click.Path(file_okay=False), help=DB_HELP)
 @click.option("--layers", help="Comma-separated layers to keep: presets (colour, texture, parts, objects) or node names. "
               "Default: all four presets. Fixed when the archive is created.")
@@ -67,14 +91,20 @@ def main() -> None:
               "(tcp://HOST:8786, or tls://...), or to a new local cluster with local:N (N worker processes).")
 @click.option("--checkpoint-every", default=512, show_default=True, type=click.IntRange(1, 100_000),
               help="Save progress after this many images (a crash loses at most this many).")
+@click.option("--moved-from", metavar="OLDPATH", help="PATH is where the indexed folder OLDPATH went: its rows are "
+              "re-pointed first (nothing is embedded again), then PATH is indexed as usual.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
 @click.option("--json", "as_json", is_flag=True, help="Print the run's counts as JSON.")
 def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, engine, workers, file_timeout, cluster,
-              checkpoint_every, quiet, as_json):
+              checkpoint_every, moved_from, quiet, as_json):
     """Index every image below PATHS into --db; re-running only does what changed."""
+    if moved_from and len(paths) != 1:
+        _fail(click.UsageError("--moved-from takes exactly one PATH: the folder's new place"))
     try:
-        with Archive.open(db, create=True, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
+        with Archive.open(db, create=not moved_from, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
                           whiten=whiten, weights=weights) as archive:
+            if moved_from:
+                _print_renamed(archive.rename_root(moved_from, paths[0]), as_json)
             report = archive.add(paths, progress=not quiet, batch_size=batch_size, checkpoint_every=checkpoint_every,
                                  engine=engine, workers=workers, cluster=_cluster(cluster),
                                  file_timeout=file_timeout)
@@ -97,9 +127,33 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, e
                    f"(+ {report['peak_rss_workers'] / 2**20:.0f} MB in decode workers)")
     if report["failed"] or report["known_failures"]:
         click.echo(f"See the reasons with: kinscope info --db {db}")
+    _print_notes(report, db)
     if report["interrupted"]:
         click.echo("Interrupted: the finished batches are saved. Run the same command again to resume.", err=True)
         sys.exit(130)
+
+
+def _print_renamed(done: dict, as_json: bool) -> None:
+    if not as_json:
+        click.echo(f"{done['renamed']} rows re-pointed from {done['old']} to {done['new']} ({done['found']} files found "
+                   f"there, {done['not_found']} not)" + (f"; {done['dropped_doubles']} rows already catalogued at the "
+                                                         "new place kept theirs" if done["dropped_doubles"] else ""))
+
+
+def _print_notes(report: dict, db: str) -> None:
+    """What the run left out, and rows the catalog holds for roots that are gone."""
+    links = [s for s in report.get("skipped", []) if "target" in s]
+    folders = [s for s in report.get("skipped", []) if "target" not in s]
+    if links:
+        click.echo(f"not indexed: {len(links)} link{'s' if len(links) != 1 else ''} to files outside the indexed "
+                   f"folders (e.g. {links[0]['path']} -> {links[0]['target']}); index the folders they point into to "
+                   "include those files")
+    for s in folders:
+        click.echo(f"left out: {s['path']} ({s['reason']})")
+    for root, count in report.get("gone_roots", {}).items():
+        click.echo(f"{count} catalogued images are below {root}, which no longer exists: if it moved, run "
+                   f"`kinscope roots rename {root} NEWPATH --db {db}`; to drop them, "
+                   f"`kinscope roots forget {root} --db {db}`", err=True)
 
 
 @main.command()
@@ -211,7 +265,7 @@ def check(db, repair, as_json):
 
     Exits 0 only when everything agrees."""
     try:
-        with Archive.open(db) as archive:
+        with Archive.open(db, lenient=True) as archive:  # a damaged catalog is reported with the rest
             repaired = archive.repair(progress=not as_json) if repair else None
             report = archive.check()
     except ArchiveError as exc:
@@ -260,9 +314,11 @@ def serve(db, host, port, token, allow_hosts):
 
 
 from .cli_duplicates import duplicates_cmd, restore_cmd  # noqa: E402
+from .cli_roots import roots_cmd  # noqa: E402
 
 main.add_command(duplicates_cmd)
 main.add_command(restore_cmd)
+main.add_command(roots_cmd)
 
 
 if __name__ == "__main__":

@@ -18,8 +18,10 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import IO, Iterator
 
-import numpy as np
 from PIL import Image, UnidentifiedImageError
+
+from .decode_memory import (ALPHA_MODES, DEEP_MODES, DEFAULT_MAX_DECODE_BYTES, deep_to_8bit, estimate, factor_for,
+                            reduce, reduces_first)
 
 SUPPORTED_EXTENSIONS: frozenset[str] = frozenset(
     {".jpg", ".jpeg", ".jpe", ".png", ".webp", ".tif", ".tiff",
@@ -42,8 +44,8 @@ _HEIF_BRANDS = frozenset(
      b"mif1", b"msf1"}
 )
 
-_ALPHA_MODES = frozenset({"RGBA", "LA", "PA", "RGBa"})
-_DEEP_MODES = frozenset({"I;16", "I;16B", "I;16L", "I;16N", "I", "F"})
+_ALPHA_MODES = ALPHA_MODES
+_DEEP_MODES = DEEP_MODES
 
 # Exif Orientation value -> the Pillow transpose that displays it upright.
 _TRANSPOSE = {
@@ -85,13 +87,16 @@ class Decoded:
 
 
 def open_image(source, *, max_pixels: int = DEFAULT_MAX_PIXELS,
-               min_side: int | None = None) -> Decoded:
-    """Decode `source` (path, bytes or binary file object) into a Decoded."""
+               min_side: int | None = None, max_bytes: int = DEFAULT_MAX_DECODE_BYTES) -> Decoded:
+    """Decode `source` (path, bytes or binary file object) into a Decoded.
+
+    max_bytes bounds the memory the decode and its conversion would take (decode_memory.estimate),
+    checked from the header before any pixel is decoded."""
     if min_side is not None and (not isinstance(min_side, int) or min_side < 1):
         raise ValueError("min_side must be a positive integer or None")
     with _binary_stream(source) as fp:
         _check_head(fp)
-        return _decode_stream(fp, max_pixels, min_side)
+        return _decode_stream(fp, max_pixels, min_side, max_bytes)
 
 
 @contextlib.contextmanager
@@ -166,13 +171,14 @@ def _open_formats() -> tuple[str, ...]:
     return _PILLOW_FORMATS + (("HEIF",) if _heif_ready() else ())
 
 
-def _decode_stream(fp: IO[bytes], max_pixels: int, min_side: int | None) -> Decoded:
+def _decode_stream(fp: IO[bytes], max_pixels: int, min_side: int | None, max_bytes: int) -> Decoded:
     # No warnings.catch_warnings() here: it is not thread-safe and decoding
-    # runs in a thread pool.  Pillow's bomb warning/error, when raised as an
+    # runs in server threads too (see decode_memory.quiet_pillow_warnings and
+    # index.reader).  Pillow's bomb warning/error, when raised as an
     # exception, becomes a DecodeError below like any other failure.
     try:
         with Image.open(fp, formats=_open_formats()) as im:
-            return _decode_opened(im, max_pixels, min_side)
+            return _decode_opened(im, max_pixels, min_side, max_bytes)
     except DecodeError:
         raise
     except Exception as exc:  # bad input must never escape raw
@@ -193,13 +199,14 @@ def _failure_reason(exc: Exception) -> str:
     return "the image data is corrupt or uses an unsupported feature"
 
 
-def _decode_opened(im: Image.Image, max_pixels: int, min_side: int | None) -> Decoded:
+def _decode_opened(im: Image.Image, max_pixels: int, min_side: int | None, max_bytes: int) -> Decoded:
     full_w, full_h = _checked_size(im, max_pixels)
     _request_draft(im, min_side)
+    _checked_bytes(im, min_side, max_bytes)
     im.load()  # full decode now, so truncation surfaces here and not later
     metadata = read_metadata(im)
     orientation = _orientation(im)
-    image = _apply_orientation(_reduce(_to_rgb(im), min_side), orientation)
+    image = _apply_orientation(_small_rgb(im, min_side), orientation)
     if orientation >= 5:  # values 5-8 swap the axes
         full_w, full_h = full_h, full_w
     return Decoded(image, full_w, full_h, im.format or "", metadata)
@@ -215,6 +222,26 @@ def _checked_size(im: Image.Image, max_pixels: int) -> tuple[int, int]:
             f"the image is too large to decode safely ({width}x{height} pixels, "
             f"limit {max_pixels:,})")
     return width, height
+
+
+def _checked_bytes(im: Image.Image, min_side: int | None, max_bytes: int) -> None:
+    """Refuse a decode whose pixels and conversion would take more than max_bytes."""
+    need = estimate(im, min_side)
+    if need > max_bytes:
+        raise DecodeError(
+            f"the image would take about {need / 1e6:.0f} MB of memory to decode ({im.size[0]}x{im.size[1]} "
+            f"pixels, mode {im.mode}; limit {max_bytes / 1e6:.0f} MB)")
+
+
+def _small_rgb(im: Image.Image, min_side: int | None) -> Image.Image:
+    """The decoded image as 8-bit RGB, reduced for min_side; reduced first where that gives the same
+    pixels, so no full-size copy is made (decode_memory)."""
+    factor = factor_for(im.size, min_side)
+    if im.mode in _DEEP_MODES:
+        return deep_to_8bit(im, factor).convert("RGB")
+    if factor >= 2 and reduces_first(im):
+        return _to_rgb(reduce(im, factor))
+    return _reduce(_to_rgb(im), min_side)
 
 
 def _request_draft(im: Image.Image, min_side: int | None) -> None:
@@ -238,7 +265,7 @@ def _reduce(image: Image.Image, min_side: int | None) -> Image.Image:
 def _to_rgb(im: Image.Image) -> Image.Image:
     """Return a new 8-bit RGB image (never the file-backed `im` itself)."""
     if im.mode in _DEEP_MODES:
-        return _deep_to_8bit(im).convert("RGB")
+        return deep_to_8bit(im).convert("RGB")
     if im.mode in _ALPHA_MODES or "transparency" in im.info:
         return _composite_on_white(im)
     return im.convert("RGB")
@@ -248,29 +275,6 @@ def _composite_on_white(im: Image.Image) -> Image.Image:
     rgba = im.convert("RGBA")  # also turns P/L/RGB 'transparency' into alpha
     white = Image.new("RGBA", rgba.size, (255, 255, 255, 255))
     return Image.alpha_composite(white, rgba).convert("RGB")
-
-
-def _deep_to_8bit(im: Image.Image) -> Image.Image:
-    """Scale 16-bit, 32-bit int and float grey images to 8 bits ("L")."""
-    values = np.asarray(im)
-    if im.mode.startswith("I;16"):
-        # round(v / 257) in integers: maps 0..65535 onto 0..255 exactly.
-        out = (values.astype(np.uint32) + 128) // 257
-    else:
-        out = np.rint(_scale_unknown_range(values.astype(np.float32), im.mode == "F"))
-    return Image.fromarray(np.clip(out, 0, 255).astype(np.uint8))
-
-
-def _scale_unknown_range(values: np.ndarray, is_float: bool) -> np.ndarray:
-    # Pillow does not say what range "I"/"F" pixels use.  Assume the usual
-    # ones: float 0..1, else 16-bit 0..65535; anything else is stretched.
-    values = np.nan_to_num(values, nan=0.0, posinf=0.0, neginf=0.0)
-    low, high = float(values.min()), float(values.max())
-    if is_float and low >= 0 and high <= 1:
-        return values * 255
-    if low >= 0 and high <= 65535:
-        return values / 257
-    return (values - low) * (255 / (high - low)) if high > low else values * 0
 
 
 def _orientation(im: Image.Image) -> int:

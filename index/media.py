@@ -1,11 +1,15 @@
 """Images for people to look at: cached thumbnails, display-size copies, and region crops.
 
 Files are only ever opened by catalog id (the caller passes the catalog row), never by a path
-that came from outside.
+that came from outside, and only while the file is the one catalogued: its resolved path inside the
+indexed roots, its size and modification time those of the catalog (checked_file).
 """
 from __future__ import annotations
 
+import contextlib
 import io
+import os
+import stat
 from pathlib import Path
 
 from PIL import Image
@@ -23,24 +27,49 @@ def _jpeg(image: Image.Image, quality: int = 85) -> bytes:
     return buf.getvalue()
 
 
-def thumbnail(row: dict, size: int, cache: Path) -> bytes:
-    """A JPEG whose longer side is `size`, generated once per content hash and kept in `cache`."""
+class Unservable(Exception):
+    """The catalogued file is not what may be shown under this id (the message says why)."""
+
+
+@contextlib.contextmanager
+def checked_file(row: dict, roots: list[str]):
+    """The row's file, opened, if its resolved path lies inside one of the (resolved) indexed roots
+    and its size and modification time are still the catalog's; Unservable otherwise. The checks
+    are made on the open file, so a link re-pointed meanwhile cannot slip another file in."""
+    real = os.path.realpath(row["path"])
+    if not any(real == r or real.startswith(r.rstrip(os.sep) + os.sep) for r in roots):
+        raise Unservable("its file lies outside the indexed folders (a link pointing elsewhere?)")
+    with open(real, "rb") as fh:
+        st = os.fstat(fh.fileno())
+        if not stat.S_ISREG(st.st_mode):
+            raise Unservable("its path is no longer a regular file")
+        if st.st_size != row["size"] or st.st_mtime != row["mtime"]:
+            raise Unservable("its file changed since it was indexed (size or date differ); run `kinscope index`")
+        yield fh
+
+
+def thumbnail(row: dict, size: int, cache: Path, source=None) -> bytes:
+    """A JPEG whose longer side is `size`, generated once per content hash and kept in `cache` (when
+    the database folder can be written)."""
     if size not in THUMB_SIZES:
         raise ValueError(f"thumbnail size must be one of {THUMB_SIZES}")
     path = Path(cache) / f"{row['id']}-{(row.get('sha256') or 'x')[:12]}-{size}.jpg"
     if path.exists():
         return path.read_bytes()
-    image = open_image(row["path"], min_side=size).image
+    image = open_image(source or row["path"], min_side=size).image
     image.thumbnail((size, size), Image.LANCZOS)
     data = _jpeg(image, 82)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    atomic_write(path, data)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        atomic_write(path, data)
+    except OSError:
+        pass  # a read-only database folder: served without a cache
     return data
 
 
-def display(row: dict) -> bytes:
+def display(row: dict, source=None) -> bytes:
     """The whole image as a browser-safe JPEG, no side longer than DISPLAY_SIDE."""
-    image = open_image(row["path"], min_side=DISPLAY_SIDE).image
+    image = open_image(source or row["path"], min_side=DISPLAY_SIDE).image
     image.thumbnail((DISPLAY_SIDE, DISPLAY_SIDE), Image.LANCZOS)
     return _jpeg(image, 88)
 
@@ -56,9 +85,9 @@ def crop(image: Image.Image, box: list[float] | tuple[float, ...]) -> Image.Imag
     return image.crop((left, top, right, bottom))
 
 
-def patch(row: dict, box: list[float], size: int = 96) -> bytes:
+def patch(row: dict, box: list[float], size: int = 96, source=None) -> bytes:
     """A region of an indexed image as a small JPEG (for channel exemplars)."""
-    image = crop(open_image(row["path"], min_side=512).image, box)
+    image = crop(open_image(source or row["path"], min_side=512).image, box)
     image.thumbnail((size, size), Image.LANCZOS)
     if max(image.size) < size:
         scale = size / max(image.size)

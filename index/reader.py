@@ -7,6 +7,8 @@ from __future__ import annotations
 
 import hashlib
 import os
+import threading
+import warnings
 
 from .decode import DecodeError, open_image
 from .preprocess import fit_square
@@ -20,7 +22,22 @@ def decode_side(size: int) -> int:
 
 
 def read_file(path: str, size: int) -> dict:
-    """{"pixels": (size, size, 3) uint8, "row": catalog fields} or {"error": reason, "size", "mtime"}."""
+    """{"pixels": (size, size, 3) uint8, "row": catalog fields} or {"error": reason, "size", "mtime"}.
+
+    The decoder's warnings (Pillow's DecompressionBombWarning, "Corrupt EXIF data", ...) are kept out
+    of the terminal and added to the reason when the file fails."""
+    if threading.current_thread() is not threading.main_thread():  # catch_warnings is process-wide
+        return _read_file(path, size)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = _read_file(path, size)
+    said = list(dict.fromkeys(str(w.message).strip() for w in caught))
+    if "error" in result and said:
+        result["error"] += f" (the decoder warned: {'; '.join(said)[:300]})"
+    return result
+
+
+def _read_file(path: str, size: int) -> dict:
     try:
         with open(path, "rb") as fh:
             data = fh.read()

@@ -39,12 +39,14 @@ def sha256_file(path: str) -> str:
 
 
 def normalize_roots(paths) -> list[str]:
+    """Absolute paths with every link resolved: a file is catalogued once, at its real path, however
+    it was reached (a link to an indexed folder given as a root adds nothing)."""
     roots = []
     for p in paths:
         p = os.path.abspath(os.fspath(p))
         if not os.path.exists(p):
             raise FileNotFoundError(f"no such file or folder: {p}")
-        roots.append(p)
+        roots.append(os.path.realpath(p))
     return roots
 
 
@@ -62,32 +64,50 @@ def walk_roots(roots: list[str]) -> list[str]:
             + sorted((r for r in files if not inside(r)), key=lambda r: (os.path.dirname(r), r)))
 
 
-def walk(roots: list[str], errors: list[dict]) -> Iterator[dict]:
-    """Every file with an image extension below the roots, with size and mtime.
+def walk(roots: list[str], errors: list[dict], skipped: list[dict] | None = None,
+         exclude: tuple[str, ...] = ()) -> Iterator[dict]:
+    """Every file with an image extension below the roots (real paths), with size and mtime.
 
-    Folder symlinks are not followed (no loops, no escaping the roots); file symlinks are.
+    Links are never catalogued themselves: folder links are not followed (no loops, no second copy of
+    a folder), a file link whose target lies inside the roots is left to the target's own entry, and
+    one whose target lies outside them is not indexed and is noted in `skipped`; a dangling link is
+    an error. Folders in `exclude` and kinscope database folders (their thumbnails are images too)
+    are left out, also noted in `skipped`.
     """
     def on_error(exc: OSError) -> None:
         errors.append({"path": exc.filename, "reason": f"cannot read folder: {exc.strerror}"})
 
+    skipped = [] if skipped is None else skipped
+    inside = below(roots)
     for root in roots:
         if os.path.isfile(root):
-            candidates = [root]
-            yield from _stat_all(candidates, errors)
+            yield from _stat_all([root], errors, inside, skipped)
             continue
         for folder, dirs, files in os.walk(root, onerror=on_error):
+            if folder in exclude or is_database_folder(files):
+                skipped.append({"path": folder, "reason": "a kinscope database folder: left out of the scan"})
+                dirs[:] = []
+                continue
             dirs.sort()
             names = sorted(f for f in files if os.path.splitext(f)[1].lower() in SUPPORTED_EXTENSIONS)
-            yield from _stat_all([os.path.join(folder, n) for n in names], errors)
+            yield from _stat_all([os.path.join(folder, n) for n in names], errors, inside, skipped)
 
 
-def _stat_all(paths: list[str], errors: list[dict]) -> Iterator[dict]:
+def is_database_folder(names) -> bool:
+    names = set(names)
+    return "catalog.sqlite" in names and "manifest.json" in names
+
+
+def _stat_all(paths: list[str], errors: list[dict], inside: Callable[[str], bool] | None = None,
+              skipped: list[dict] | None = None) -> Iterator[dict]:
     for path in paths:
         try:
             path.encode("utf-8")
         except UnicodeEncodeError:  # bytes that are not UTF-8 in the name: SQLite text cannot hold it
             shown = os.fsencode(path).decode("utf-8", "backslashreplace")
             errors.append({"path": shown, "reason": "the file name is not valid UTF-8; rename the file to index it"})
+            continue
+        if os.path.islink(path) and not _link_to_catalogue(path, errors, inside, skipped):
             continue
         try:
             st = os.stat(path)
@@ -97,15 +117,31 @@ def _stat_all(paths: list[str], errors: list[dict]) -> Iterator[dict]:
         yield {"path": path, "size": st.st_size, "mtime": st.st_mtime}
 
 
+def _link_to_catalogue(path: str, errors: list[dict], inside, skipped) -> bool:
+    """A file link below a root: never catalogued under its own name (see walk); False = skip it."""
+    target = os.path.realpath(path)
+    if not os.path.exists(target):
+        errors.append({"path": path, "reason": "a link to a file that does not exist (dangling link)"})
+    elif inside is not None and not inside(target) and skipped is not None:
+        skipped.append({"path": path, "target": target,
+                        "reason": "a link to a file outside the indexed folders: not indexed"})
+    return False
+
+
 def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[str, dict]], folders: set[str],
-                   roots: list[str], failures: dict[str, dict]) -> ChangeSet:
+                   roots: list[str], failures: dict[str, dict],
+                   size_known: Callable[[int], bool] | None = None,
+                   rows_with_hash: Callable[[str], list[dict]] | None = None) -> ChangeSet:
     """Compare what is on disk with what the catalog holds below the same roots.
 
     The walk yields each folder's files together, so only one folder's catalog rows are in memory at
     a time (all rows at once took 0.6 GB at a million files, measured).
 
     rows_in_folder(folder): the catalog rows directly in a folder; folders: every folder the catalog
-    holds rows in below the roots (catalog.folders_under). Only rows below the roots take part.
+    holds rows in below the roots (catalog.folders_under). Only rows below the roots take part, but
+    a new file may also be a row elsewhere whose file is gone (a folder moved from another root, or
+    from a root that no longer exists): size_known(size) says whether any row has that size (only
+    then is the new file hashed), rows_with_hash(sha256) gives the rows with that content.
     """
     cs = ChangeSet()
     unknown, missing = [], []
@@ -126,7 +162,8 @@ def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[s
             missing.extend(row for path, row in rows.items() if path not in seen)
     for folder in sorted(folders - visited):  # folders the catalog knows and the walk did not reach
         missing.extend(r for p, r in rows_in_folder(folder).items() if under(p))
-    _match_moves(unknown, missing, cs)
+    elsewhere = (size_known, rows_with_hash, under) if size_known and rows_with_hash else None
+    _match_moves(unknown, missing, cs, elsewhere)
     cs.gone_failures = [p for p in failures if p not in seen_failures]
     return cs
 
@@ -156,22 +193,37 @@ def _compare(f: dict, row: dict | None, failures: dict[str, dict], cs: ChangeSet
             cs.changed.append((row["id"], f))
 
 
-def _match_moves(unknown: list[dict], missing: list[dict], cs: ChangeSet) -> None:
-    """A new path whose content hash equals a vanished row's is that row, moved."""
+def _match_moves(unknown: list[dict], missing: list[dict], cs: ChangeSet, elsewhere=None) -> None:
+    """A new path whose content hash equals a vanished row's is that row, moved: a row below the
+    roots that the walk did not find, or (elsewhere: size_known, rows_with_hash, under) a row outside
+    the roots whose file no longer exists."""
     by_size = defaultdict(list)
     for row in missing:
         by_size[row["size"]].append(row)
-    by_hash = {}
+    claimed: dict[int, dict] = {}
     for f in unknown:
-        if by_size.get(f["size"]):  # only hash new files that could be a move: same size
+        here = [r for r in by_size.get(f["size"], ()) if r["id"] not in claimed]
+        there = elsewhere is not None and elsewhere[0](f["size"])
+        if here or there:  # only hash new files that could be a move: same size
             f["sha256"] = _hash_or_none(f["path"])
-            candidates = [r for r in by_size[f["size"]] if r["sha256"] == f["sha256"] and r["id"] not in by_hash]
-            if f["sha256"] and candidates:
-                by_hash[candidates[0]["id"]] = f
-                cs.moved.append((candidates[0]["id"], f))
+            match = _moved_row(f, here, elsewhere if there else None, claimed)
+            if match is not None:
+                claimed[match["id"]] = f
+                cs.moved.append((match["id"], f))
                 continue
         cs.new.append(f)
-    cs.removed = [row["id"] for row in missing if row["id"] not in by_hash]
+    cs.removed = [row["id"] for row in missing if row["id"] not in claimed]
+
+
+def _moved_row(f: dict, here: list[dict], elsewhere, claimed: dict) -> dict | None:
+    if not f["sha256"]:
+        return None
+    match = next((r for r in here if r["sha256"] == f["sha256"]), None)
+    if match is None and elsewhere is not None:
+        _, rows_with_hash, under = elsewhere
+        match = next((r for r in rows_with_hash(f["sha256"]) if r["size"] == f["size"] and r["id"] not in claimed
+                      and not under(r["path"]) and not os.path.lexists(r["path"])), None)
+    return match
 
 
 def _hash_or_none(path: str) -> str | None:

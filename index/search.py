@@ -1,7 +1,7 @@
 """Query descriptor -> FAISS -> catalog rows, best first, with folder/date filters and paging."""
 from __future__ import annotations
 
-from datetime import datetime, timezone
+from datetime import date, datetime, timezone
 from typing import Callable
 
 import numpy as np
@@ -45,6 +45,12 @@ def row_filter(folder: str | None = None, date_from: str | None = None, date_to:
     """A predicate on catalog rows: below a folder, and dated (capture date, else file date) in a range."""
     if not (folder or date_from or date_to):
         return None
+    for name, value in (("date_from", date_from), ("date_to", date_to)):
+        if value:
+            try:
+                date.fromisoformat(value[:10])
+            except (TypeError, ValueError):
+                raise ValueError(f"{name} must be a real date YYYY-MM-DD, got {value!r}") from None
     prefix = folder.rstrip("/") + "/" if folder else None
 
     def accept(row: dict) -> bool:

@@ -1,6 +1,7 @@
 """Request parameters, validated: anything unexpected becomes a 400 with a plain message."""
 from __future__ import annotations
 
+import datetime
 import re
 
 from flask import request
@@ -45,6 +46,10 @@ def date(name: str) -> str | None:
         return None
     if not re.fullmatch(r"\d{4}-\d{2}-\d{2}", raw):
         raise BadRequest(f"{name} must be a date YYYY-MM-DD")
+    try:
+        datetime.date.fromisoformat(raw)  # a real calendar day: no month 13, no 30 February
+    except ValueError:
+        raise BadRequest(f"{name} is not a real date: {raw} (YYYY-MM-DD)") from None
     return raw
 
 

@@ -1,0 +1,200 @@
+"""The roots of an archive: the folders (or files) its runs were given, and what became of them.
+
+A root that was renamed or moved leaves catalog rows that point nowhere. `rename` re-points them
+(same ids, so the descriptors stay and nothing is embedded again); `forget` drops them with their
+descriptors. `missing` finds rows whose files are gone, for `check`.
+"""
+from __future__ import annotations
+
+import os
+
+import numpy as np
+
+from .catalog import under_clause
+
+
+class RootError(Exception):
+    """A plain sentence for the user."""
+
+
+def outermost(roots: list[str]) -> list[str]:
+    """The roots not inside another one."""
+    return [r for r in roots if not any(o != r and r.startswith(o.rstrip(os.sep) + os.sep) for o in roots)]
+
+
+def is_gone(root: str) -> bool:
+    """The root no longer exists, or is an empty folder (a disk not mounted at its mount point, say):
+    every row below it points nowhere, and that is a matter for `roots rename/forget`, never for an
+    automatic repair."""
+    if not os.path.exists(root):
+        return True
+    if os.path.isdir(root):
+        try:
+            with os.scandir(root) as entries:
+                return next(entries, None) is None
+        except OSError:
+            return True
+    return False
+
+
+def gone_roots(catalog) -> dict[str, int]:
+    """Root -> rows below it, for the roots that are gone and still have rows."""
+    out = {}
+    for root in outermost(catalog.known_roots()):
+        if is_gone(root):
+            count = catalog.count_under(root)
+            if count:
+                out[root] = count
+    return out
+
+
+def missing_root_message(archive, paths, message: str) -> str:
+    """For `index GONE`: how many rows the gone root holds, and how to re-point or forget them."""
+    gone = gone_roots(archive.catalog)
+    for p in paths:
+        p = os.path.abspath(os.fspath(p))
+        if p in gone:
+            return (f"{message}. The catalog holds {gone[p]} images below it: if the folder moved, run "
+                    f"`kinscope roots rename {p} NEWPATH --db {archive.db}` (no image is embedded again); "
+                    f"to drop them, `kinscope roots forget {p} --db {archive.db}`")
+    return message
+
+
+def listing(archive) -> list[dict]:
+    """Every root with its rows; `state` is "present", "gone" or "inside ROOT" (nested in another)."""
+    catalog = archive.catalog
+    roots = catalog.known_roots()
+    top = outermost(roots)
+    out = []
+    for root in roots:
+        outer = next((o for o in top if o != root and root.startswith(o.rstrip(os.sep) + os.sep)), None)
+        state = f"inside {outer}" if outer else "gone" if is_gone(root) else "present"
+        out.append({"root": root, "rows": catalog.count_under(root), "state": state})
+    return out
+
+
+def missing(archive) -> dict:
+    """Rows whose files are gone: {"gone_roots": {root: rows}, "ids": [...], "paths": [...]}.
+
+    Rows below a gone root are only counted; every other row's file is looked up (one stat each)."""
+    catalog = archive.catalog
+    gone = gone_roots(catalog)
+    skip = tuple(r.rstrip(os.sep) + os.sep for r in gone)
+    ids, paths = [], []
+    for image_id, path in catalog.iter_paths():
+        if path in gone or path.startswith(skip):
+            continue
+        if not os.path.isfile(path):
+            ids.append(image_id)
+            paths.append(path)
+    return {"gone_roots": gone, "ids": ids, "paths": paths}
+
+
+def _resolved(path: str) -> str:
+    return os.path.realpath(os.path.abspath(os.fspath(path)))
+
+
+def _known(catalog, root: str) -> str:
+    """The root as the catalog spells it (given as typed, absolute, or resolved)."""
+    roots = catalog.known_roots()
+    for candidate in (os.fspath(root), os.path.abspath(os.fspath(root)), _resolved(root)):
+        if candidate in roots:
+            return candidate
+    shown = "\n  ".join(roots) or "(none)"
+    raise RootError(f"{root} is not a root of this archive; its roots are:\n  {shown}")
+
+
+def rename(archive, old: str, new: str) -> dict:
+    """Re-point the rows below `old` to `new` (where the folder went). Rows already catalogued at the
+    new place keep theirs; the old duplicates are dropped. No descriptor is computed again."""
+    catalog = archive.catalog
+    old = _known(catalog, old)
+    if not os.path.exists(new):
+        raise RootError(f"no such file or folder: {new}")
+    new = _resolved(new)
+    if not is_gone(old):
+        raise RootError(f"{old} still exists; index {new} as a root of its own, or forget {old} first")
+    if new == old or new.startswith(old.rstrip(os.sep) + os.sep) or old.startswith(new.rstrip(os.sep) + os.sep):
+        raise RootError(f"{old} and {new} overlap; give the folder's new place outside its old one")
+    with archive._writer_lock():
+        moved, doubled = _repoint(archive, old, new)
+    found = not_found = 0
+    where, args = under_clause("path", new)
+    for path, size in catalog.db.execute(f"select path, size from images where {where}", args):
+        if os.path.isfile(path) and os.path.getsize(path) == size:  # is each file where the catalog now says?
+            found += 1
+        else:
+            not_found += 1
+    return {"old": old, "new": new, "renamed": moved, "dropped_doubles": doubled,
+            "found": found, "not_found": not_found}
+
+
+def _repoint(archive, old: str, new: str) -> tuple[int, int]:
+    """Rows below `old` moved below `new` (the caller holds the writer lock); rows whose new path is
+    already catalogued are dropped as doubles. Returns (rows re-pointed, doubles dropped)."""
+    doubled = archive.catalog.ids_taken_after_rename(old, new)
+    _drop(archive, doubled)
+    return archive.catalog.rename_root(old, new), len(doubled)
+
+
+def drop_empty_gone_roots(catalog) -> None:
+    """Roots that no longer exist and hold no row (every file was found elsewhere by its content)
+    leave the list of roots."""
+    for root in catalog.known_roots():
+        if not os.path.exists(root) and catalog.count_under(root) == 0:
+            catalog.forget_root(root)
+
+
+def adopt_resolved_roots(archive) -> int:
+    """Roots recorded through a link (by versions that did not resolve them) re-pointed to their real
+    path: the same files, so nothing is embedded again, and a folder indexed both through a link and
+    directly keeps one row per file. The caller holds the writer lock."""
+    moved = 0
+    for root in outermost(archive.catalog.known_roots()):
+        real = os.path.realpath(root)
+        overlap = real.startswith(root.rstrip(os.sep) + os.sep) or root.startswith(real.rstrip(os.sep) + os.sep)
+        if real != root and os.path.exists(root) and not overlap:
+            moved += _repoint(archive, root, real)[0]
+    return moved
+
+
+def forget(archive, root: str, *, even_if_present: bool = False) -> dict:
+    """Drop the rows below `root` and their descriptors (the files are not touched)."""
+    catalog = archive.catalog
+    root = _known(catalog, root)
+    if not even_if_present and not is_gone(root):
+        raise RootError(f"{root} still exists; forgetting it drops the descriptors of its images. Add "
+                        "--even-if-present if that is what you want")
+    with archive._writer_lock():
+        ids = catalog.ids_under(root)
+        _drop(archive, ids)
+        catalog.forget_root(root)
+    return {"root": root, "forgotten": len(ids)}
+
+
+def forget_ids(archive, ids: list[int]) -> int:
+    """Drop these rows and their descriptors (the caller holds the writer lock)."""
+    _drop(archive, ids)
+    return len(ids)
+
+
+def _drop(archive, ids: list[int]) -> None:
+    """Catalog rows first, then the stores: a crash in between leaves only orphan descriptors,
+    which the next run drops (`Archive.reconcile`), never rows without descriptors."""
+    if not ids:
+        return
+    archive.catalog.delete_images(ids)
+    gone = np.array(sorted(ids), np.int64)
+    for layer in archive.layer_names:
+        archive._writer(layer).remove(gone)
+    archive._save_stores()
+    _drop_thumbnails(archive, set(ids))
+
+
+def _drop_thumbnails(archive, ids: set[int]) -> None:
+    folder = archive.db / "thumbs"
+    if folder.is_dir():
+        for p in folder.glob("*.jpg"):
+            head = p.name.split("-")[0]
+            if head.isdigit() and int(head) in ids:
+                p.unlink(missing_ok=True)
