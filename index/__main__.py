@@ -1,7 +1,7 @@
 import sys
 
 try:
-    from .cli import main
+    from .cli.commands import main
 except KeyboardInterrupt:  # Ctrl-C while the libraries load: nothing has been touched yet
     sys.exit(130)
 

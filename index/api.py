@@ -13,22 +13,22 @@ from typing import Iterable
 import numpy as np
 from PIL import Image
 
-from . import manifest as mf
-from .backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone, BackboneError, get_backbone
-from .catalog import Catalog
-from .dbfolder import CatalogProblem, damaged_message, open_catalog
-from .decode import DecodeError, open_image
-from . import media
-from .exemplars import Exemplars
-from .pipeline import Job, configure_threads, cores, run
-from .pooling import PCAWhitening
-from .roots import adopt_resolved_roots, drop_empty_gone_roots, gone_roots, missing_root_message
-from .scan import below, diff_by_folder, normalize_roots, walk, walk_roots
-from .search import nearest, row_filter
-from .layer_store import LayerStore
-from .segments import StoreFileError, assemble, update
-from .store import VectorStore
-from .vector_index import IndexPolicy, bytes_per_vector_of
+from .db import manifest as mf
+from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone, BackboneError, get_backbone
+from .db.catalog import Catalog
+from .db.folder import CatalogProblem, damaged_message, open_catalog
+from .images.decode import DecodeError, open_image
+from .images import renditions as media
+from .search.exemplars import Exemplars
+from .ingest.pipeline import Job, configure_threads, cores, run
+from .model.pooling import PCAWhitening
+from .db.roots import adopt_resolved_roots, drop_empty_gone_roots, gone_roots, missing_root_message
+from .ingest.scan import below, diff_by_folder, normalize_roots, walk, walk_roots
+from .search.nearest import nearest, row_filter
+from .vectors.writer import LayerStore
+from .vectors.segments import StoreFileError, assemble, update
+from .vectors.reader import VectorStore
+from .vectors.kinds import IndexPolicy, bytes_per_vector_of
 
 DEFAULT_GEM_P = 3.0
 DEFAULT_FILE_TIMEOUT = 120.0  # seconds one file may take to read and decode before it is abandoned
@@ -110,7 +110,7 @@ class Archive:
     @classmethod
     def _new_manifest_apart(cls, db, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
         """A new archive's manifest. Resolving its layers loads the model, so unless this process
-        already holds torch, that happens in a child process (`python -m index.engines
+        already holds torch, that happens in a child process (`python -m index.model.torch_engine
         --new-manifest`): an indexer creating its archive then stays without torch (about 0.7 GB)."""
         import json
         import subprocess
@@ -119,7 +119,7 @@ class Archive:
             return cls._new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights)
         asked = {"db": str(db), "backbone": backbone_name, "layers": layer_names, "gem_p": gem_p,
                  "whiten": whiten, "weights": None if weights is None else str(weights)}
-        out = subprocess.run([sys.executable, "-m", "index.engines", "--new-manifest"], input=json.dumps(asked),
+        out = subprocess.run([sys.executable, "-m", "index.model.torch_engine", "--new-manifest"], input=json.dumps(asked),
                              capture_output=True, text=True)
         try:
             answer = json.loads(out.stdout.strip().splitlines()[-1])
@@ -132,7 +132,7 @@ class Archive:
 
     @staticmethod
     def _new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
-        from .layers import resolve_layers
+        from .model.layers import resolve_layers
 
         try:
             backbone = get_backbone(backbone_name, weights)
@@ -223,8 +223,8 @@ class Archive:
     @property
     def embedder(self):
         if self._embedder is None:
-            from .embed import Embedder
-            from .layers import Layer
+            from .model.torch_embedder import Embedder
+            from .model.layers import Layer
 
             configure_threads(cores())  # torch and FAISS get the cores; large buffers are reused
             model = self.backbone.load()
@@ -324,7 +324,7 @@ class Archive:
         decode processes (default one per core); file_timeout: seconds before a file's decode is
         abandoned and recorded as a failure (default DEFAULT_FILE_TIMEOUT; 0 = no limit).
         """
-        from .onnx_engine import ENGINES
+        from .model.onnx_engine import ENGINES
 
         if engine is not None and engine not in ENGINES:
             raise ArchiveError(f"unknown engine {engine!r}; choose one of: {', '.join(ENGINES)}")
@@ -442,8 +442,8 @@ class Archive:
     def _indexing_embedder(self, choice: str, images: int):
         """What embeds the images of a run: the cached ONNX model without torch when the engine choice
         allows it (exported first, in a child process, when missing and worth it), else torch."""
-        from .onnx_embed import OnnxEmbedder
-        from .onnx_engine import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path, onnx_available
+        from .model.onnx_embedder import OnnxEmbedder
+        from .model.onnx_engine import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path, onnx_available
 
         if choice != "torch" and onnx_available():
             b = self.manifest["backbone"]
@@ -468,12 +468,12 @@ class Archive:
         return self.embedder
 
     def _export_engine(self, *, required: bool) -> None:
-        """Export the ONNX model in a child process (`python -m index.engines DB`): torch is loaded
+        """Export the ONNX model in a child process (`python -m index.model.torch_engine DB`): torch is loaded
         there, once per database, and never in the indexer."""
         import subprocess
         import sys
 
-        out = subprocess.run([sys.executable, "-m", "index.engines", str(self.db)], capture_output=True, text=True)
+        out = subprocess.run([sys.executable, "-m", "index.model.torch_engine", str(self.db)], capture_output=True, text=True)
         if out.returncode != 0:
             message = (out.stderr.strip().splitlines() or ["unknown error"])[-1]
             if required:
@@ -482,7 +482,7 @@ class Archive:
 
     def _finish_add(self, cs, errors, run_id, jobs, on_batch, on_failures, checkpoint, checkpoint_every, progress):
         """The embedding part of add() on a Dask cluster; the same bookkeeping as on one machine."""
-        from . import cluster as dask_run
+        from .ingest import cluster as dask_run
 
         client = self._cluster
         own = isinstance(client, str)
@@ -610,7 +610,7 @@ class Archive:
             try:
                 # Decoded exactly as at indexing time, so a file's query descriptor equals its stored one;
                 # a region needs the full resolution.
-                from .reader import decode_side
+                from .ingest.decode_task import decode_side
 
                 image = open_image(query, min_side=decode_side(self.backbone.input_size) if box is None else None).image
             except DecodeError as exc:
@@ -660,7 +660,7 @@ class Archive:
         name = entry["name"]
         if self.whitening(name):
             raise ArchiveError(f"layer {name} is PCA-whitened; its scores do not split over positions")
-        from .explain import descriptor, explain_pair, patch_box
+        from .search.explain import descriptor, explain_pair, patch_box
 
         row = self.item(int(match))
         query_maps = self.embedder.maps_of_image(self.query_image(query, box))[name]
@@ -727,7 +727,7 @@ class Archive:
     def duplicates(self, *, layer: str | None = None, threshold: float | None = None, normalised: bool = True,
                    progress: bool = False) -> dict:
         """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md."""
-        from . import duplicates as dup
+        from .duplicates import groups as dup
 
         try:
             return dup.from_archive(self, layer=layer, threshold=threshold, normalised=normalised, progress=progress)
@@ -737,13 +737,13 @@ class Archive:
     # --- roots ------------------------------------------------------------------------------
     def roots(self) -> list[dict]:
         """The folders (or files) runs were given: [{root, rows, state}] (see index/roots.py)."""
-        from .roots import listing
+        from .db.roots import listing
 
         return listing(self)
 
     def rename_root(self, old: str, new: str) -> dict:
         """Re-point the rows below a root that moved to where it went; descriptors kept."""
-        from .roots import RootError, rename
+        from .db.roots import RootError, rename
 
         try:
             return rename(self, old, new)
@@ -752,7 +752,7 @@ class Archive:
 
     def forget_root(self, root: str, *, even_if_present: bool = False) -> dict:
         """Drop the rows below a root and their descriptors (files untouched)."""
-        from .roots import RootError, forget
+        from .db.roots import RootError, forget
 
         try:
             return forget(self, root, even_if_present=even_if_present)
@@ -762,13 +762,13 @@ class Archive:
     # --- verification ---------------------------------------------------------------------
     def check(self) -> dict:
         """Verify catalog, stores, manifest and files; read-only. {'ok', 'checked', 'findings'}."""
-        from .check import check
+        from .ingest.check import check
 
         return check(self).as_dict()
 
     def repair(self, *, progress: bool = True) -> dict:
         """Fix what `check` finds: orphans and temporary files removed, missing descriptors re-embedded."""
-        from .check import RepairRefused, repair
+        from .ingest.check import RepairRefused, repair
 
         try:
             return repair(self, progress=progress)
@@ -806,7 +806,7 @@ class Archive:
     @staticmethod
     def available_layers(backbone: str = DEFAULT_BACKBONE, weights: str | None = None) -> dict:
         """The layers one can index for a backbone, with channels, stride and presets."""
-        from .layers import listing
+        from .model.layers import listing
 
         try:
             b = get_backbone(backbone, weights)

@@ -31,7 +31,7 @@ from PIL import Image, ImageDraw, ImageEnhance, ImageFont, ImageOps
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from index import duplicates as dup  # noqa: E402
+from index.duplicates import groups as dup  # noqa: E402
 from index.api import Archive  # noqa: E402
 
 SEED = 20260211

@@ -49,7 +49,7 @@ def machine() -> str:
     except OSError:
         pass
     mem = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
-    from index.pipeline import cores
+    from index.ingest.pipeline import cores
 
     return f"{cpu}, {cores()} cores, {mem:.0f} GiB RAM, {platform.system()} {platform.release()}, Python {platform.python_version()}"
 
@@ -114,8 +114,8 @@ def make_set(folder: Path, n: int, size: tuple[int, int], seed: int) -> list[str
 
 def naive(paths: list[str], embedder) -> float:
     """Images per second, one at a time: full decode, torch eager, batch of 1."""
-    from index.decode import open_image
-    from index.embed import pool
+    from index.images.decode import open_image
+    from index.model.torch_embedder import pool
 
     t = time.perf_counter()
     for p in paths:
@@ -144,10 +144,10 @@ def naive_main(listing: str) -> None:
 
     import torch
 
-    from index.backbones import get_backbone
-    from index.embed import Embedder
-    from index.layers import resolve_layers
-    from index.pipeline import cores
+    from index.model.backbones import get_backbone
+    from index.model.torch_embedder import Embedder
+    from index.model.layers import resolve_layers
+    from index.ingest.pipeline import cores
 
     torch.set_num_threads(cores())  # all cores for torch, as a straightforward script would have
     backbone = get_backbone()
@@ -185,7 +185,7 @@ def kinscope(paths: list[str], work: Path, cache: Path, batch_size: int, workers
 
 
 def decode_only(paths: list[str], size: int, workers: int) -> float:
-    from index.decode_pool import DecodePool
+    from index.ingest.decode_pool import DecodePool
 
     with DecodePool(size, workers) as pool:
         list(pool.map(paths[:4]))  # workers warm
@@ -219,11 +219,11 @@ def main() -> None:
     if args.naive_of:
         return naive_main(args.naive_of)
 
-    from index.backbones import get_backbone
-    from index.embed import Embedder
-    from index.layers import resolve_layers
-    from index.pipeline import configure_threads, cores
-    from index.reader import read_file
+    from index.model.backbones import get_backbone
+    from index.model.torch_embedder import Embedder
+    from index.model.layers import resolve_layers
+    from index.ingest.pipeline import configure_threads, cores
+    from index.ingest.decode_task import read_file
 
     work = Path(args.work)
     n_cores = cores()

@@ -5,7 +5,7 @@
 
 For each size N, a fresh database is made that already holds N images: N empty files on disk (so the
 scan walks and compares them, as a nightly re-run over a large archive does), their catalog rows,
-and N synthetic descriptors per layer (index.synthetic.Descriptors, at each layer's size) in the
+and N synthetic descriptors per layer (tests.synthetic.Descriptors, at each layer's size) in the
 vector stores, built as kinscope builds them (flat while small, IVF-SQ8 above). Then `kinscope index`
 runs in a fresh process on the archive root with `--new` small JPEGs added, and its peak resident
 memory (the indexer's lifetime peak, ru_maxrss) and that of its decode workers are printed beside N,
@@ -62,10 +62,10 @@ def prefill(db: Path, files: list[tuple[str, int, float]], layers: list[str] | N
     Each layer's index is built in this process as the indexer would hold it at this size (flat while
     small, IVF-SQ8 with lists_for(N) lists above), written as one FAISS file, then laid out as the
     indexer's segments by the same conversion that upgrades an archive from before segments."""
-    from index import vector_index as vi
+    from index.vectors import kinds as vi
     from index.api import Archive
-    from index.synthetic import Descriptors
-    from index.vector_index import FLAT, IVF, IndexPolicy
+    from tests.synthetic import Descriptors
+    from index.vectors.kinds import FLAT, IVF, IndexPolicy
 
     archive = Archive.open(db, create=True, **({"layers": layers} if layers else {}))
     run_id = archive.catalog.start_run(["prefill"])
@@ -115,8 +115,8 @@ def grow(work: Path, n: int, layers: list[str] | None, batch: int = 512, checkpo
     from PIL import Image
 
     from index.api import Archive
-    from index.pipeline import peak_rss_self
-    from index.synthetic import Descriptors
+    from index.ingest.pipeline import peak_rss_self
+    from tests.synthetic import Descriptors
 
     archive = Archive.open(work / "db", create=True, **({"layers": layers} if layers else {}))
     dims = {layer: archive._layer(layer)["dim"] for layer in archive.layer_names}
@@ -167,7 +167,7 @@ def main() -> None:
     sizes = [int(s) for s in args.sizes.split(",") if s]
 
     from bench_index import load, machine, make_set
-    from index import vector_index as vi
+    from index.vectors import kinds as vi
 
     work = Path(args.work)
     print(f"machine: {machine()}")

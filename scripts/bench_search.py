@@ -2,7 +2,7 @@
 
     .venv/bin/python scripts/bench_search.py [--sizes 100000 1000000] [--dim 672] [--queries 1000]
 
-The descriptors come from index.synthetic.Descriptors (clusters, power-law spectrum, calibrated on the
+The descriptors come from tests.synthetic.Descriptors (clusters, power-law spectrum, calibrated on the
 demo archive's `parts` descriptors), at the default search layer's size (672). Queries are new points
 from the same clusters, not stored vectors. For each size and each index type kinscope offers (flat;
 IVF-SQ8 grown as the indexer grows it (index.layer_store: flat first, IVF-SQ8 past the flat limit,
@@ -34,12 +34,12 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from index.layer_store import LayerStore  # noqa: E402
-from index.segments import assemble, referenced  # noqa: E402
-from index.store import VectorStore  # noqa: E402
-from index.synthetic import Descriptors  # noqa: E402
-from index.vector_index import IndexPolicy  # noqa: E402
-from index import vector_index as vi  # noqa: E402
+from index.vectors.writer import LayerStore  # noqa: E402
+from index.vectors.segments import assemble, referenced  # noqa: E402
+from index.vectors.reader import VectorStore  # noqa: E402
+from tests.synthetic import Descriptors  # noqa: E402
+from index.vectors.kinds import IndexPolicy  # noqa: E402
+from index.vectors import kinds as vi  # noqa: E402
 
 
 def rss() -> int:

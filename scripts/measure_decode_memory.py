@@ -31,9 +31,9 @@ def hwm():
             return int(line.split()[1]) * 1024
 import numpy
 from PIL import Image
-from index.reader import read_file
+from index.ingest.decode_task import read_file
 try:
-    from index.decode_memory import estimate
+    from index.images.decode_memory import estimate
 except ImportError:
     estimate = None
 path, min_side = sys.argv[1], int(sys.argv[2])

@@ -22,7 +22,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from index.api import Archive  # noqa: E402
-from index.pooling import l2_normalize  # noqa: E402
+from index.model.pooling import l2_normalize  # noqa: E402
 
 LAYER = "objects"
 DIM = 1280

@@ -36,7 +36,7 @@ def sample_images() -> dict[str, Image.Image]:
 @pytest.fixture(scope="session")
 def lite0():
     """The default backbone with its packaged weights, loaded once."""
-    from index.backbones import get_backbone
+    from index.model.backbones import get_backbone
 
     backbone = get_backbone()
     return backbone, backbone.load()

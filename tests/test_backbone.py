@@ -5,13 +5,13 @@ import numpy as np
 import pytest
 import torch
 
-from index.backbones import BackboneError, get_backbone
-from index.backbones.efficientnet_lite import rename_state
+from index.model.backbones import BackboneError, get_backbone
+from index.model.backbones.efficientnet_lite import rename_state
 
 
 def top5(backbone, model, image) -> list[str]:
-    from index.embed import Embedder
-    from index.layers import resolve_layers
+    from index.model.torch_embedder import Embedder
+    from index.model.layers import resolve_layers
 
     size = 224  # the resolution the classifier was trained at (EfficientNet paper, B0/Lite0)
     x = np.asarray(image.convert("RGB").resize((size, size)), np.float32).transpose(2, 0, 1) / 255.0

@@ -27,7 +27,7 @@ def _folder(path, n, seed=0):
 
 @pytest.fixture(scope="module")
 def client():
-    from index.cluster import connect
+    from index.ingest.cluster import connect
 
     c = connect(workers=2)
     yield c

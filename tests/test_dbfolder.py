@@ -219,7 +219,7 @@ def test_check_during_a_run_offers_no_repair_and_calls_nothing_interrupted(index
 
 def test_check_rereads_when_the_indexer_commits_meanwhile(indexed, tmp_path, monkeypatch):
     """A commit between reading the catalog and the stores: the comparison is made again, on one state."""
-    import index.check as check_module
+    import index.ingest.check as check_module
 
     imgs, db = _copy(indexed, tmp_path)
     lock = _hold_the_indexer_lock(db)

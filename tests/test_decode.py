@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 from PIL import Image, PngImagePlugin
 
-from index import decode
-from index.decode import (
+from index.images import decode
+from index.images.decode import (
     DEFAULT_MAX_PIXELS,
     SUPPORTED_EXTENSIONS,
     DecodeError,

@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from index.decode import DecodeError, open_image
-from index.decode_memory import DEFAULT_MAX_DECODE_BYTES, deep_to_8bit, estimate, reduce
-from index.reader import read_file
+from index.images.decode import DecodeError, open_image
+from index.images.decode_memory import DEFAULT_MAX_DECODE_BYTES, deep_to_8bit, estimate, reduce
+from index.ingest.decode_task import read_file
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SIDE = 9950  # 99 million pixels: just under the 100-million-pixel limit, as in the report
@@ -55,7 +55,7 @@ def test_the_16_bit_png_peak_memory_stays_near_its_pixels(deep_png):
     code = ("import json, sys\n"
             "def hwm():\n"
             "    return next(int(l.split()[1]) * 1024 for l in open('/proc/self/status') if l.startswith('VmHWM:'))\n"
-            "from index.decode import open_image\n"
+            "from index.images.decode import open_image\n"
             "base = hwm(); open_image(sys.argv[1], min_side=384); print(json.dumps(hwm() - base))\n")
     out = subprocess.run([sys.executable, "-c", code, str(path)], capture_output=True, text=True, check=True,
                          env={**os.environ, "PYTHONPATH": REPO}, cwd=path.parent)
@@ -77,7 +77,7 @@ def test_deep_images_in_stripes_equal_the_whole_image_conversion(mode):
     im = Image.fromarray(values, mode if mode != "I;16" else None)
     assert im.mode == mode
     whole = np.clip(np.rint(values.astype(np.float64) / 257), 0, 255)  # what one pass over the image gives
-    import index.decode_memory as dm
+    import index.images.decode_memory as dm
 
     stripes = dm.STRIPE_BYTES
     try:
@@ -94,7 +94,7 @@ def test_deep_images_in_stripes_equal_the_whole_image_conversion(mode):
 
 
 def test_alpha_images_reduced_in_stripes_equal_pillows_reduce():
-    import index.decode_memory as dm
+    import index.images.decode_memory as dm
 
     rng = np.random.default_rng(4)
     im = Image.fromarray(rng.integers(0, 256, (301, 203, 4), dtype=np.uint8), "RGBA")

@@ -10,16 +10,16 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from index.decode import open_image
-from index.decode_pool import DecodePool
-from index.pipeline import Job, run
-from index.preprocess import fit_square
-from index.reader import decode_side, read_file
+from index.images.decode import open_image
+from index.ingest.decode_pool import DecodePool
+from index.ingest.pipeline import Job, run
+from index.images.preprocess import fit_square
+from index.ingest.decode_task import decode_side, read_file
 
 # A stand-in reader that misbehaves on purpose, by file name: runs in the worker processes.
 HOSTILE_READER = textwrap.dedent('''
     import os, signal, time
-    from index.reader import read_file as real
+    from index.ingest.decode_task import read_file as real
 
     def read_file(path, size):
         name = os.path.basename(path)
@@ -111,9 +111,9 @@ def test_work_in_flight_is_bounded_while_the_consumer_is_busy(tmp_path, hostile,
 
 
 def test_pipeline_records_an_abandoned_file_as_a_failure(tmp_path, lite0, hostile, monkeypatch):
-    from index.embed import Embedder
-    from index.layers import resolve_layers
-    import index.pipeline as pipeline
+    from index.model.torch_embedder import Embedder
+    from index.model.layers import resolve_layers
+    import index.ingest.pipeline as pipeline
 
     backbone, model = lite0
     embedder = Embedder(backbone, model, resolve_layers(backbone, model, ["colour"]))
@@ -132,8 +132,8 @@ def test_pipeline_records_an_abandoned_file_as_a_failure(tmp_path, lite0, hostil
 
 def test_a_reduced_size_decode_gives_nearly_the_full_decode_descriptor(tmp_path, lite0, sample_images):
     """JPEG draft mode (libjpeg's DCT scaling) against a full-size decode of the same file."""
-    from index.embed import Embedder
-    from index.layers import resolve_layers
+    from index.model.torch_embedder import Embedder
+    from index.model.layers import resolve_layers
 
     backbone, model = lite0
     embedder = Embedder(backbone, model, resolve_layers(backbone, model, list(backbone.default_layers)))

@@ -20,10 +20,10 @@ import pytest
 from click.testing import CliRunner
 from PIL import Image, ImageEnhance
 
-from index import duplicates as dup
+from index.duplicates import groups as dup
 from index.api import Archive, ArchiveError
 from index.cli import main
-from index.pooling import l2_normalize
+from index.model.pooling import l2_normalize
 
 ORIGINALS = ("astronaut", "camera", "coffee", "chelsea", "rocket", "coins", "horse", "brick", "hubble_deep_field",
              "immunohistochemistry")

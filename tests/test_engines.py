@@ -4,9 +4,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from index.embed import Embedder
-from index.engines import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path
-from index.layers import resolve_layers
+from index.model.torch_embedder import Embedder
+from index.model.torch_engine import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path
+from index.model.layers import resolve_layers
 
 
 @pytest.fixture(scope="module")
@@ -116,8 +116,8 @@ def test_pooling_equals_the_reference_gem_and_peaks(p):
     # Reference: index.pooling.gem (GeM as defined by Radenovic, Tolias and Chum) and torch's max.
     import torch
 
-    from index.embed import pool
-    from index.pooling import gem, l2_normalize
+    from index.model.torch_embedder import pool
+    from index.model.pooling import gem, l2_normalize
 
     g = torch.Generator().manual_seed(0)
     fmap = torch.rand(3, 16, 9, 7, generator=g) * 6

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from index.explain import block_sum, descriptor, explain_pair, shares
+from index.search.explain import block_sum, descriptor, explain_pair, shares
 
 
 def test_the_position_split_sums_to_the_score_for_random_maps():

@@ -10,7 +10,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from PIL import Image
 
-from index.decode import DecodeError, open_image
+from index.images.decode import DecodeError, open_image
 
 FUZZ = settings(max_examples=120, deadline=None, suppress_health_check=list(HealthCheck))
 

@@ -4,11 +4,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-import index.layer_store as ls
-import index.segments as sg
-from index.layer_store import LayerStore
-from index.pooling import l2_normalize
-from index.vector_index import FLAT, IVF, IndexPolicy
+import index.vectors.writer as ls
+import index.vectors.segments as sg
+from index.vectors.writer import LayerStore
+from index.model.pooling import l2_normalize
+from index.vectors.kinds import FLAT, IVF, IndexPolicy
 
 DIM = 32
 POLICY = IndexPolicy(flat_max=1_500, train_per_list=10, probe_queries=100)
@@ -122,7 +122,7 @@ def test_a_segment_of_another_codec_is_refused(tmp_path):
 
 
 def test_learned_whitening_maps_every_stored_vector_segment_by_segment(tmp_path, small_segments):
-    from index.pooling import PCAWhitening
+    from index.model.pooling import PCAWhitening
 
     x, ids = vectors(1_000), np.arange(1, 1_001)
     writer = LayerStore(tmp_path, "parts", DIM, None, policy=POLICY)

@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import pytest
 
-from index.backbones import BackboneError
-from index.layers import listing, resolve_layers
+from index.model.backbones import BackboneError
+from index.model.layers import listing, resolve_layers
 
 
 def test_presets_go_from_fine_to_coarse(lite0):

@@ -7,7 +7,7 @@ import sys
 import numpy as np
 import pytest
 
-from index.allocator import keep_buffers
+from index.model.allocator import keep_buffers
 
 
 def test_a_process_started_from_a_large_parent_reports_its_own_peak():
@@ -16,7 +16,7 @@ def test_a_process_started_from_a_large_parent_reports_its_own_peak():
     # peaked at 1.2 GB from a shell). VmHWM (proc(5)) belongs to the new address space, so the child
     # must report its own figure, well below the parent's.
     parent = np.ones(1200 * 2**20, np.uint8)  # 1.2 GB touched in this process
-    child = subprocess.run([sys.executable, "-c", "from index.pipeline import peak_rss_self; print(peak_rss_self())"],
+    child = subprocess.run([sys.executable, "-c", "from index.ingest.pipeline import peak_rss_self; print(peak_rss_self())"],
                            capture_output=True, text=True, check=True)
     child_peak = int(child.stdout.strip())
     assert 0 < child_peak < 1000 * 2**20 < parent.nbytes  # the child imports torch (~0.7 GB), nothing more

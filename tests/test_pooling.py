@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from index.pooling import PCAWhitening, gem, l2_normalize
+from index.model.pooling import PCAWhitening, gem, l2_normalize
 
 
 def test_gem_with_p_1_is_average_pooling():

@@ -174,14 +174,14 @@ def test_ctrl_c_stops_after_the_batch_and_says_how_to_resume(tmp_path):
 def test_a_full_disk_mid_run_gives_a_clear_error_and_leaves_whole_files(tmp_path, monkeypatch):
     import errno
 
-    import index.manifest
-    import index.segments
-    import index.store
+    import index.db.manifest
+    import index.vectors.segments
+    import index.vectors.reader
     from index.api import ArchiveError
 
     imgs = _folder(tmp_path / "imgs", 12)
     archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
-    real = index.store.atomic_write
+    real = index.vectors.reader.atomic_write
     calls = {"n": 0}
 
     def filling_disk(path, data):
@@ -190,9 +190,9 @@ def test_a_full_disk_mid_run_gives_a_clear_error_and_leaves_whole_files(tmp_path
             raise OSError(errno.ENOSPC, "No space left on device", str(path))
         real(path, data)
 
-    monkeypatch.setattr(index.store, "atomic_write", filling_disk)
-    monkeypatch.setattr(index.manifest, "atomic_write", filling_disk)
-    monkeypatch.setattr(index.segments, "atomic_write", filling_disk)
+    monkeypatch.setattr(index.vectors.reader, "atomic_write", filling_disk)
+    monkeypatch.setattr(index.db.manifest, "atomic_write", filling_disk)
+    monkeypatch.setattr(index.vectors.segments, "atomic_write", filling_disk)
     with pytest.raises(ArchiveError, match="No space left on device.*Nothing was half-written"):
         archive.add([imgs], progress=False, batch_size=2, checkpoint_every=2)
     monkeypatch.undo()

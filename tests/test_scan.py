@@ -4,8 +4,8 @@ from __future__ import annotations
 import os
 import shutil
 
-from index.catalog import Catalog
-from index.scan import diff_by_folder, normalize_roots, walk, walk_roots
+from index.db.catalog import Catalog
+from index.ingest.scan import diff_by_folder, normalize_roots, walk, walk_roots
 
 
 def write(path, data: bytes) -> str:
@@ -17,7 +17,7 @@ def write(path, data: bytes) -> str:
 
 def catalogue(catalog: Catalog, paths: list[str]) -> dict[str, int]:
     """Rows as a finished run leaves them ('ok', with the content hash); path -> id."""
-    from index.scan import sha256_file
+    from index.ingest.scan import sha256_file
 
     files = [{"path": p, "size": os.stat(p).st_size, "mtime": os.stat(p).st_mtime, "sha256": sha256_file(p)}
              for p in paths]

@@ -4,8 +4,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from index.pooling import l2_normalize
-from index.store import VectorStore
+from index.model.pooling import l2_normalize
+from index.vectors.reader import VectorStore
 
 
 def brute_force(db: np.ndarray, ids: np.ndarray, q: np.ndarray, k: int):

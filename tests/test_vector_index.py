@@ -5,11 +5,11 @@ import faiss
 import numpy as np
 import pytest
 
-from index.layer_store import LayerStore
-from index.segments import assemble
-from index.store import VectorStore
-from index.synthetic import Descriptors
-from index.vector_index import FLAT, IVF, IndexPolicy, lists_for
+from index.vectors.writer import LayerStore
+from index.vectors.segments import assemble
+from index.vectors.reader import VectorStore
+from .synthetic import Descriptors
+from index.vectors.kinds import FLAT, IVF, IndexPolicy, lists_for
 
 DIM = 672  # the default search layer (parts) of efficientnet_lite0
 N = 24_000
@@ -200,8 +200,8 @@ def test_an_archive_switches_to_ivf_records_it_in_the_manifest_and_stays_consist
 def codes_loss(dim: int, n: int, codes: str):
     """recall@10 with every list probed (only the codes lose anything) against exact search (FAISS
     IndexFlatIP, brute force), stored vectors as queries; and what a rebuild has: the decoded vectors."""
-    from index import vector_index as vi
-    from index.store_build import recall_without_self
+    from index.vectors import kinds as vi
+    from index.vectors.rebuild import recall_without_self
 
     x = Descriptors(dim, seed=3).database(n)
     codec = vi.new_ivf(dim, 64, IndexPolicy(), codes=codes)
@@ -223,7 +223,7 @@ def test_the_simulated_loss_of_the_codes_matches_the_measured_loss(dim, n, codes
     score moved by the error of uniform quantization within half a step per dimension (the additive
     uniform noise model of quantization, Widrow and Kollar, "Quantization Noise", 2008; from memory).
     Checked here against the loss measured with the exact vectors (FAISS IndexFlatIP, brute force)."""
-    from index.store_build import code_steps, simulated_code_recall
+    from index.vectors.rebuild import code_steps, simulated_code_recall
 
     codec, probe, measured, decoded = codes_loss(dim, n, codes)
     seen = faiss.IndexFlatIP(dim)
@@ -238,7 +238,7 @@ def test_the_simulated_loss_of_the_codes_matches_the_measured_loss(dim, n, codes
 def test_few_dimensions_get_16_bit_codes_which_keep_the_neighbours_8_bit_codes_lose():
     """On 32 dimensions (the colour layer's size) 8-bit codes reorder close neighbours; 16-bit floats
     keep nearly all of them. Reference: exact search, FAISS IndexFlatIP."""
-    from index import vector_index as vi
+    from index.vectors import kinds as vi
 
     assert vi.codes_for(32, IndexPolicy()) == "fp16" and vi.codes_for(672, IndexPolicy()) == "sq8"
     assert vi.codes_for(672, IndexPolicy(pca_dim=128)) == "fp16"

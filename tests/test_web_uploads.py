@@ -21,8 +21,8 @@ import pytest
 from PIL import Image
 
 from index.api import ArchiveError
-from index.decode import DecodeError
-from index.media import DISPLAY_SIDE
+from index.images.decode import DecodeError
+from index.images.renditions import DISPLAY_SIDE
 from web import create_app
 from web.archive_access import Holder
 from web.uploads import KeptQuery, keep

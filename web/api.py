@@ -7,8 +7,8 @@ from pathlib import Path
 from flask import Blueprint, Response, jsonify, request, url_for
 
 from index.api import ArchiveError
-from index.decode import DecodeError
-from index.search import item_date
+from index.images.decode import DecodeError
+from index.search.nearest import item_date
 
 from . import params
 from .archive_access import holder

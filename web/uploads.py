@@ -15,9 +15,9 @@ from dataclasses import dataclass
 import numpy as np
 from PIL import Image
 
-from index.decode import open_image
-from index.media import DISPLAY_SIDE
-from index.preprocess import fit_square
+from index.images.decode import open_image
+from index.images.renditions import DISPLAY_SIDE
+from index.images.preprocess import fit_square
 
 DISPLAY_QUALITY = 90
 

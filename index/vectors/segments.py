@@ -19,8 +19,8 @@ from pathlib import Path
 import faiss
 import numpy as np
 
-from . import vector_index as vi
-from .store import atomic_write
+from . import kinds as vi
+from .reader import atomic_write
 
 STORES = "stores"
 

@@ -6,7 +6,7 @@ import platform
 import re
 from pathlib import Path
 
-from .store import atomic_write
+from ..vectors.reader import atomic_write
 
 FORMAT = 2  # 2: stores as codec + segments (index.segments); 1: one FAISS file per layer
 FILE = "manifest.json"
@@ -21,7 +21,7 @@ def versions() -> dict:
     import torch
     import torchvision
 
-    from . import __version__
+    from .. import __version__
 
     return {
         "kinscope": __version__,

@@ -7,7 +7,7 @@ import os
 from datetime import datetime, timezone
 from html import escape
 
-from .decode import DecodeError, open_image
+from ..images.decode import DecodeError, open_image
 
 THUMB_SIDE = 180  # longest side of an embedded thumbnail, pixels
 THUMB_QUALITY = 70
@@ -150,6 +150,6 @@ def render(doc: dict, *, max_groups: int = MAX_GROUPS) -> str:
 def write(doc: dict, path: str | os.PathLike, *, max_groups: int = MAX_GROUPS) -> None:
     from pathlib import Path
 
-    from .store import atomic_write
+    from ..vectors.reader import atomic_write
 
     atomic_write(Path(path), render(doc, max_groups=max_groups).encode("utf-8"))

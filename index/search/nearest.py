@@ -6,8 +6,8 @@ from typing import Callable
 
 import numpy as np
 
-from .catalog import Catalog
-from .store import VectorStore
+from ..db.catalog import Catalog
+from ..vectors.reader import VectorStore
 
 RESULT_KEYS = ("id", "path", "score", "width", "height", "folder", "name", "size", "mtime",
                "captured_at", "camera", "title", "keywords", "format")

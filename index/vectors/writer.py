@@ -23,9 +23,9 @@ import faiss
 import numpy as np
 
 from . import segments as sg
-from . import vector_index as vi
+from . import kinds as vi
 from .segments import Segment
-from .vector_index import FLAT, IVF, IndexPolicy
+from .kinds import FLAT, IVF, IndexPolicy
 
 SEGMENT_BYTES = 32 * 2**20  # a segment is sealed once it holds this much index data
 ABSORB_BELOW = SEGMENT_BYTES // 4  # a sealed segment shrunk below this goes back into the tail
@@ -174,7 +174,7 @@ class LayerStore:
     def rebuild(self, kind: str | None = None, *, transform=None, dim: int | None = None) -> None:
         """Re-lay every vector out as index type `kind` (default: what the size calls for), segment by
         segment; `transform` maps vectors to a new space of dimension `dim` (learned whitening)."""
-        from .store_build import rebuild
+        from .rebuild import rebuild
 
         dim = dim or self.dim
         kind = kind or vi.wanted_kind(FLAT, len(self), dim, 0, self.policy) or FLAT

@@ -9,9 +9,9 @@ from PIL import Image
 from torchvision.models.feature_extraction import create_feature_extractor
 
 from .backbones import Backbone
-from .engines import TorchEngine, make_engine, pool  # noqa: F401  (pool: the torch pooling, used by tests)
+from .torch_engine import TorchEngine, make_engine, pool  # noqa: F401  (pool: the torch pooling, used by tests)
 from .layers import Layer
-from .preprocess import fit_square, to_input
+from ..images.preprocess import fit_square, to_input
 
 
 class Embedder:

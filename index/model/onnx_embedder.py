@@ -14,7 +14,7 @@ import numpy as np
 from PIL import Image
 
 from .onnx_engine import OnnxEngine
-from .preprocess import fit_square, to_input
+from ..images.preprocess import fit_square, to_input
 
 
 class OnnxEmbedder:

@@ -16,7 +16,7 @@ from typing import BinaryIO, Callable
 import faiss
 import numpy as np
 
-from . import vector_index as vi
+from . import kinds as vi
 
 
 def atomic_write(path: Path, data: bytes | Callable[[BinaryIO], None]) -> None:

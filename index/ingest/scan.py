@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 from itertools import groupby
 from typing import Callable, Iterator
 
-from .decode import SUPPORTED_EXTENSIONS
+from ..images.decode import SUPPORTED_EXTENSIONS
 
 
 @dataclass

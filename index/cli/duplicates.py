@@ -8,8 +8,8 @@ import sys
 
 import click
 
-from .api import Archive, ArchiveError
-from .quarantine import QuarantineError, indexed_roots, move, restore
+from ..api import Archive, ArchiveError
+from ..duplicates.quarantine import QuarantineError, indexed_roots, move, restore
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
 CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
@@ -84,7 +84,7 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
     except ArchiveError as exc:
         _fail(exc)
     if report_path:  # before any move, so the thumbnails come from where the files are now
-        from .report import write
+        from ..duplicates.review_page import write
 
         try:
             write(doc, report_path)

@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from .api import Archive, ArchiveError
+from ..api import Archive, ArchiveError
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
 

@@ -10,8 +10,8 @@ import os
 import threading
 import warnings
 
-from .decode import DecodeError, open_image
-from .preprocess import fit_square
+from ..images.decode import DecodeError, open_image
+from ..images.preprocess import fit_square
 
 
 def decode_side(size: int) -> int:

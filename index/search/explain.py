@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from .pooling import GEM_EPS, gem
+from ..model.pooling import GEM_EPS, gem
 
 MAX_MAP_SIDE = 32  # heat maps are summed into at most this many cells per side (sums stay exact)
 MAX_PAIR_SIDE = 8  # correspondences are computed between cells of at most this grid

@@ -1,6 +1,6 @@
 """Decoding in worker processes: files in, network input pixels and catalog fields out.
 
-Each worker is a plain `python -m index.decode_pool` process (no torch imported, so it starts in a
+Each worker is a plain `python -m index.ingest.decode_pool` process (no torch imported, so it starts in a
 fraction of a second and stays small) with a task pipe and a result pipe of its own. A dispatcher
 thread in the indexer keeps every worker `prefetch` files ahead and drains the result pipes, so
 decoding overlaps the inference that runs in the indexer's main thread. Nothing grows with the
@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 from multiprocessing.connection import Connection, wait
 from typing import Any, Iterable, Iterator
 
-DEFAULT_READER = "index.reader:read_file"
+DEFAULT_READER = "index.ingest.decode_task:read_file"
 _DONE = object()
 
 
@@ -85,7 +85,7 @@ class DecodePool:
         env["PYTHONPATH"] = os.pathsep.join(paths)
         try:
             proc = subprocess.Popen(
-                [sys.executable, "-m", "index.decode_pool", str(task_r), str(result_w), self.reader, str(self.nice)],
+                [sys.executable, "-m", "index.ingest.decode_pool", str(task_r), str(result_w), self.reader, str(self.nice)],
                 pass_fds=(task_r, result_w), stdin=subprocess.DEVNULL, env=env, close_fds=True)
         finally:
             os.close(task_r)

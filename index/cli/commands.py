@@ -8,11 +8,11 @@ import sys
 
 import click
 
-from .api import Archive, ArchiveError
-from .dbfolder import sqlite_message
-from .decode_memory import quiet_pillow_warnings
-from .backbones import DEFAULT_BACKBONE, NAMES
-from .vector_index import type_name
+from ..api import Archive, ArchiveError
+from ..db.folder import sqlite_message
+from ..images.decode_memory import quiet_pillow_warnings
+from ..model.backbones import DEFAULT_BACKBONE, NAMES
+from ..vectors.kinds import type_name
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
 
@@ -26,7 +26,7 @@ def _cluster(value: str | None):
     """local:N -> a new local Dask cluster of N processes (its client); an address passes through."""
     if not value or not value.startswith("local:"):
         return value
-    from .cluster import connect
+    from ..ingest.cluster import connect
 
     try:
         return connect(workers=int(value.split(":", 1)[1]))
@@ -313,8 +313,8 @@ def serve(db, host, port, token, allow_hosts):
     run_server(db, host, port, token, allow_hosts=allow_hosts)
 
 
-from .cli_duplicates import duplicates_cmd, restore_cmd  # noqa: E402
-from .cli_roots import roots_cmd  # noqa: E402
+from .duplicates import duplicates_cmd, restore_cmd  # noqa: E402
+from .roots import roots_cmd  # noqa: E402
 
 main.add_command(duplicates_cmd)
 main.add_command(restore_cmd)

@@ -3,7 +3,7 @@
 torch (eager, through torchvision's feature extractor) is the reference. The ONNX engine
 (index.onnx_engine, torch-free) runs the same extractor exported with GeM pooling inside the graph:
 each chosen layer's descriptor and channel peaks are graph outputs. export_onnx checks the exported
-model against torch before it is cached. `python -m index.engines DB` exports the model for an
+model against torch before it is cached. `python -m index.model.torch_engine DB` exports the model for an
 archive in its own process, so an indexer that asked for it need never load torch.
 """
 from __future__ import annotations
@@ -109,7 +109,7 @@ def export_onnx(extractor: torch.nn.Module, names: list[str], input_size: int, p
     """Export with pooling inside and a dynamic batch axis, check it against torch, write `path` atomically."""
     import onnx
 
-    from .store import atomic_write
+    from ..vectors.reader import atomic_write
 
     buf = io.BytesIO()
     dummy = torch.zeros(2, 3, input_size, input_size)
@@ -192,7 +192,7 @@ def make_engine(choice: str, extractor: torch.nn.Module, names: list[str], nodes
 
 def export_for_archive(db: str) -> Path:
     """Export (or find cached) the ONNX model of the archive in folder `db`; its path."""
-    from .api import Archive, ArchiveError
+    from ..api import Archive, ArchiveError
 
     archive = Archive.open(db)
     embedder = archive.embedder
@@ -208,7 +208,7 @@ def new_manifest(asked: dict) -> dict:
     {"manifest": ...} or {"error": message}."""
     from pathlib import Path
 
-    from .api import Archive, ArchiveError
+    from ..api import Archive, ArchiveError
 
     try:
         return {"manifest": Archive._new_manifest(Path(asked["db"]), asked["backbone"], asked["layers"],
@@ -218,12 +218,12 @@ def new_manifest(asked: dict) -> dict:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """`python -m index.engines DB`: the export in a process of its own (Archive.add calls it).
-    `python -m index.engines --new-manifest` (settings as JSON on stdin): a new archive's manifest,
+    """`python -m index.model.torch_engine DB`: the export in a process of its own (Archive.add calls it).
+    `python -m index.model.torch_engine --new-manifest` (settings as JSON on stdin): a new archive's manifest,
     as JSON on stdout (Archive.open calls it when creating an archive in a process without torch)."""
     import json
 
-    from .api import ArchiveError
+    from ..api import ArchiveError
 
     args = sys.argv[1:] if argv is None else argv
     if args == ["--new-manifest"]:
@@ -231,7 +231,7 @@ def main(argv: list[str] | None = None) -> int:
         print(json.dumps(answer))
         return 1 if "error" in answer else 0
     if len(args) != 1:
-        print("usage: python -m index.engines DB | --new-manifest", file=sys.stderr)
+        print("usage: python -m index.model.torch_engine DB | --new-manifest", file=sys.stderr)
         return 2
     try:
         print(export_for_archive(args[0]))

@@ -29,8 +29,8 @@ import faiss
 import numpy as np
 
 from . import segments as sg
-from . import vector_index as vi
-from .vector_index import FLAT, IVF
+from . import kinds as vi
+from .kinds import FLAT, IVF
 
 TRAIN_BYTES = 256 * 2**20  # the k-means sample, as codes (IVF -> IVF) or float32 vectors
 DECODE_ROWS = 8_192  # vectors decoded at a time

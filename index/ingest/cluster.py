@@ -42,9 +42,9 @@ def _embedder(settings: dict):
     if key not in _WORKER_EMBEDDERS:
         import torch
 
-        from .backbones import get_backbone
-        from .embed import Embedder
-        from .layers import Layer
+        from ..model.backbones import get_backbone
+        from ..model.torch_embedder import Embedder
+        from ..model.layers import Layer
 
         torch.set_num_threads(1)  # one task per worker thread; Dask runs as many as the worker has
         backbone = get_backbone(settings["backbone"], settings["weights"])
@@ -57,7 +57,7 @@ def _embedder(settings: dict):
 
 def embed_chunk(settings: dict, chunk: list[tuple[int, str]], path_map: tuple[str, str] | None = None) -> dict:
     """Runs on a worker: read, decode and embed a chunk; failures are returned, never raised."""
-    from .reader import read_file
+    from .decode_task import read_file
 
     embedder = _embedder(settings)
     pixels, rows, failures = [], [], []

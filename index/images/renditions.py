@@ -15,7 +15,7 @@ from pathlib import Path
 from PIL import Image
 
 from .decode import open_image
-from .store import atomic_write
+from ..vectors.reader import atomic_write
 
 THUMB_SIZES = (128, 256, 512)
 DISPLAY_SIDE = 1600

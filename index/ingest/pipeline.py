@@ -18,7 +18,7 @@ from typing import Callable
 import numpy as np
 from tqdm import tqdm
 
-from .allocator import keep_buffers
+from ..model.allocator import keep_buffers
 from .decode_pool import DecodePool, peak_rss_of
 
 

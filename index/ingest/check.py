@@ -10,8 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import segments as sg
-from .segments import STORES
+from ..vectors import segments as sg
+from ..vectors.segments import STORES
 
 
 @dataclass
@@ -218,7 +218,7 @@ def _check_leftovers(archive, report: Report) -> None:
 
 def _check_missing_files(archive, report: Report, running: bool) -> None:
     """Rows whose files are gone: whole roots that vanished, and single files (one stat per row)."""
-    from .roots import missing
+    from ..db.roots import missing
 
     found = missing(archive)
     db = archive.db
@@ -259,7 +259,7 @@ def repair(archive, *, progress: bool = True) -> dict:
 
     Files missing below roots that still exist are forgotten; a root that is gone entirely is left to
     `kinscope roots rename/forget` (a disk not mounted must not cost its descriptors)."""
-    from .roots import forget_ids, missing
+    from ..db.roots import forget_ids, missing
 
     damage = archive.catalog.damage or _unsound(archive.catalog.quick_check())
     if damage:

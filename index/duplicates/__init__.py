@@ -1,0 +1,1 @@
+"""Near-duplicate groups, the keeper rule, quarantine moves and their undo, the static review page."""

@@ -1,0 +1,1 @@
+"""Pixels from files: safe decoding, metadata, network input, renditions for people to look at."""

@@ -1,0 +1,1 @@
+"""Network -> descriptors: backbones, layer taps, pooling, the torch and ONNX Runtime engines."""

@@ -1,0 +1,1 @@
+"""Queries against the stores: nearest neighbours, explanations of a match, channel exemplars."""
