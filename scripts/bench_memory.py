@@ -102,8 +102,8 @@ def prefill(db: Path, files: list[tuple[str, int, float]], layers: list[str] | N
         faiss.write_index(index, str(db / archive._layer(layer)["file"]))
         kinds[layer] = vi.type_name(vi.describe(index))
         del index
-        archive._writer(layer)  # laid out as segments (codec + segment files)
-    archive._save_stores()
+        archive.indexer.writer(layer)  # laid out as segments (codec + segment files)
+    archive.indexer.save_stores()
     archive.close()
     return kinds
 
@@ -122,7 +122,7 @@ def grow(work: Path, n: int, layers: list[str] | None, batch: int = 512, checkpo
     dims = {layer: archive._layer(layer)["dim"] for layer in archive.layer_names}
     # What the indexer holds besides its stores: the ONNX model (exported in a child process, as a
     # first run does), run once on a batch of 8 so that its working memory is in the figure too.
-    embedder = archive._indexing_embedder("onnx", n)
+    embedder = archive.indexer.embedder_for_run("onnx", n)
     side = archive.manifest["backbone"]["input_size"]
     embedder.embed_images([Image.new("RGB", (side, side), (k * 30, 90, 160)) for k in range(8)])
     start_rss = peak_rss_self()
@@ -137,13 +137,13 @@ def grow(work: Path, n: int, layers: list[str] | None, batch: int = 512, checkpo
             ids = np.arange(start + off + 1, start + min(count, off + batch) + 1, dtype=np.int64)
             t_add = time.perf_counter()
             for layer in archive.layer_names:
-                archive._writer(layer).add(ids, chunk[layer][off:off + len(ids)])
+                archive.indexer.writer(layer).add(ids, chunk[layer][off:off + len(ids)])
             slowest = max(slowest, time.perf_counter() - t_add)
             if (start + off + len(ids)) % checkpoint < batch:
-                archive._save_stores()
+                archive.indexer.save_stores()
         del chunk
-    archive._save_stores()
-    info = {layer: archive._writer(layer).describe() for layer in archive.layer_names}
+    archive.indexer.save_stores()
+    info = {layer: archive.indexer.writer(layer).describe() for layer in archive.layer_names}
     return {"n": n, "seconds": time.perf_counter() - t, "peak_rss": peak_rss_self(), "start_rss": start_rss,
             "torch": "torch" in sys.modules,
             "slowest_batch": slowest, "indexes": info,

@@ -56,8 +56,8 @@ def build(db: Path, n: int) -> np.ndarray:
              "name": f"item-{i:06d}.jpg", "size": int(rng.integers(50_000, 5_000_000)), "mtime": 1.7e9 + float(i),
              "sha256": f"{i:064x}", "status": "ok", "width": 1024, "height": 768} for i in ids)
     archive.catalog.db["images"].insert_all(rows, batch_size=5000)
-    archive._writer(LAYER).add(ids, vectors)
-    archive._save_stores()
+    archive.indexer.writer(LAYER).add(ids, vectors)
+    archive.indexer.save_stores()
     archive.close()
     return source
 

@@ -180,10 +180,10 @@ def test_a_store_ahead_of_the_catalog_is_reconciled(tmp_path):
     archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
     archive.add([tmp_path / "imgs"], progress=False)
     # Simulate the crash: an id in the store that the catalog never committed, and a committed id missing.
-    store = archive._writer("colour")  # what the indexer writes through
+    store = archive.indexer.writer("colour")  # what the indexer writes through
     store.add(np.array([999]), store.reconstruct(np.array([1])))
     store.remove(np.array([2]))
-    archive._save_stores()
+    archive.indexer.save_stores()
     reopened = Archive.open(tmp_path / "db")
     report = reopened.add([tmp_path / "imgs"], progress=False)
     assert report["embedded"] == 1

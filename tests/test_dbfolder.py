@@ -193,9 +193,9 @@ def _mid_run_state(imgs, db):
     run = archive.catalog.start_run([str(imgs)])
     new = archive.catalog.insert_pending([{"path": str(imgs / f"img-{i:03d}.png"), "size": 1, "mtime": 1.0}
                                           for i in (6, 7, 8)], run)
-    writer = archive._writer("colour")
+    writer = archive.indexer.writer("colour")
     writer.add(np.array(new), writer.reconstruct(np.array([1, 2, 3])))
-    archive._save_stores()
+    archive.indexer.save_stores()
     archive.close()
 
 
@@ -230,9 +230,9 @@ def test_check_rereads_when_the_indexer_commits_meanwhile(indexed, tmp_path, mon
         calls["n"] += 1
         if calls["n"] == 1:  # the indexer checkpoints while check reads: a new generation, one id fewer
             writer = Archive.open(db)
-            writer._writer("colour").remove(np.array([ok_ids[0]]))
+            writer.indexer.writer("colour").remove(np.array([ok_ids[0]]))
             writer.catalog.delete_images([int(ok_ids[0])])
-            writer._save_stores()
+            writer.indexer.save_stores()
         return real(archive, layer, ok_ids, report, running)
 
     monkeypatch.setattr(check_module, "_check_layer", commit_meanwhile)

@@ -44,10 +44,10 @@ def test_check_finds_orphans_gaps_and_temp_files_and_repair_fixes_them(tmp_path)
     imgs = _folder(tmp_path / "imgs", 6)
     archive = Archive.open(tmp_path / "db", create=True, layers=["colour", "objects"])
     archive.add([imgs], progress=False)
-    store = archive._writer("objects")
+    store = archive.indexer.writer("objects")
     store.add(np.array([777]), store.reconstruct(np.array([2])))  # an orphan descriptor
     store.remove(np.array([4]))  # an indexed image without one
-    archive._save_stores()
+    archive.indexer.save_stores()
     (tmp_path / "db" / ".vectors-objects.faiss.abc.tmp").write_bytes(b"half written")
     report = Archive.open(tmp_path / "db").check()
     messages = " | ".join(f["message"] for f in report["findings"])
@@ -103,8 +103,8 @@ def test_check_command_exit_codes(tmp_path):
     out = runner.invoke(main, ["check", "--db", str(tmp_path / "db")])
     assert out.exit_code == 0 and "everything agrees" in out.output
     archive = Archive.open(tmp_path / "db")
-    archive._writer("colour").remove(np.array([1]))
-    archive._save_stores()
+    archive.indexer.writer("colour").remove(np.array([1]))
+    archive.indexer.save_stores()
     out = runner.invoke(main, ["check", "--db", str(tmp_path / "db")])
     assert out.exit_code == 1 and "no descriptor" in out.output
     out = runner.invoke(main, ["check", "--db", str(tmp_path / "db"), "--repair"])

@@ -41,7 +41,9 @@ def _no_embedding(monkeypatch):
     def refuse(*args, **kwargs):
         raise AssertionError("an image was embedded again")
 
-    monkeypatch.setattr(Archive, "_indexing_embedder", refuse)
+    from index.ingest.indexer import Indexer
+
+    monkeypatch.setattr(Indexer, "embedder_for_run", refuse)
 
 
 def _run(*args):
@@ -227,9 +229,9 @@ def test_rows_recorded_through_a_link_by_earlier_versions_are_adopted(tmp_path, 
         [{"path": os.path.join(real, r["path"][len(ln) + 1:]), "size": r["size"], "mtime": r["mtime"]}
          for r in archive.catalog.db.query("select * from images")], run)
     archive.catalog.set_status(doubles, "ok")
-    writer = archive._writer("colour")
+    writer = archive.indexer.writer("colour")
     writer.add(np.array(doubles), vectors)
-    archive._save_stores()
+    archive.indexer.save_stores()
     assert archive.info()["images"] == 8
     _no_embedding(monkeypatch)
     report = archive.add([tmp_path / "ln"], progress=False)

@@ -6,7 +6,8 @@ import platform
 import re
 from pathlib import Path
 
-from ..vectors.reader import atomic_write
+from ..common.errors import ArchiveError
+from ..common.files import atomic_write
 
 FORMAT = 2  # 2: stores as codec + segments (index.segments); 1: one FAISS file per layer
 FILE = "manifest.json"
@@ -14,6 +15,16 @@ FILE = "manifest.json"
 
 def store_file(layer: str) -> str:
     return "vectors-" + re.sub(r"[^A-Za-z0-9._-]", "_", layer) + ".faiss"
+
+
+def layer_entry(manifest: dict, name: str | None) -> dict:
+    """A layer's entry, by its name or its graph node; None is the archive's default layer."""
+    name = name or manifest["default_layer"]
+    for layer in manifest["layers"]:
+        if name in (layer["name"], layer["node"]):
+            return layer
+    names = ", ".join(l["name"] for l in manifest["layers"])
+    raise ArchiveError(f"this archive has no layer {name!r}; it has: {names}")
 
 
 def versions() -> dict:

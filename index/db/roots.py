@@ -2,18 +2,18 @@
 
 A root that was renamed or moved leaves catalog rows that point nowhere. `rename` re-points them
 (same ids, so the descriptors stay and nothing is embedded again); `forget` drops them with their
-descriptors. `missing` finds rows whose files are gone, for `check`.
+descriptors (through the indexer, which holds the writer lock and the stores). `missing` finds rows
+whose files are gone, for `check`.
 """
 from __future__ import annotations
 
 import os
 
-import numpy as np
-
+from ..common.errors import ArchiveError
 from .catalog import under_clause
 
 
-class RootError(Exception):
+class RootError(ArchiveError):
     """A plain sentence for the user."""
 
 
@@ -48,21 +48,20 @@ def gone_roots(catalog) -> dict[str, int]:
     return out
 
 
-def missing_root_message(archive, paths, message: str) -> str:
+def missing_root_message(catalog, db, paths, message: str) -> str:
     """For `index GONE`: how many rows the gone root holds, and how to re-point or forget them."""
-    gone = gone_roots(archive.catalog)
+    gone = gone_roots(catalog)
     for p in paths:
         p = os.path.abspath(os.fspath(p))
         if p in gone:
             return (f"{message}. The catalog holds {gone[p]} images below it: if the folder moved, run "
-                    f"`kinscope roots rename {p} NEWPATH --db {archive.db}` (no image is embedded again); "
-                    f"to drop them, `kinscope roots forget {p} --db {archive.db}`")
+                    f"`kinscope roots rename {p} NEWPATH --db {db}` (no image is embedded again); "
+                    f"to drop them, `kinscope roots forget {p} --db {db}`")
     return message
 
 
-def listing(archive) -> list[dict]:
+def listing(catalog) -> list[dict]:
     """Every root with its rows; `state` is "present", "gone" or "inside ROOT" (nested in another)."""
-    catalog = archive.catalog
     roots = catalog.known_roots()
     top = outermost(roots)
     out = []
@@ -73,11 +72,10 @@ def listing(archive) -> list[dict]:
     return out
 
 
-def missing(archive) -> dict:
+def missing(catalog) -> dict:
     """Rows whose files are gone: {"gone_roots": {root: rows}, "ids": [...], "paths": [...]}.
 
     Rows below a gone root are only counted; every other row's file is looked up (one stat each)."""
-    catalog = archive.catalog
     gone = gone_roots(catalog)
     skip = tuple(r.rstrip(os.sep) + os.sep for r in gone)
     ids, paths = [], []
@@ -104,10 +102,10 @@ def _known(catalog, root: str) -> str:
     raise RootError(f"{root} is not a root of this archive; its roots are:\n  {shown}")
 
 
-def rename(archive, old: str, new: str) -> dict:
+def rename(catalog, indexer, old: str, new: str) -> dict:
     """Re-point the rows below `old` to `new` (where the folder went). Rows already catalogued at the
-    new place keep theirs; the old duplicates are dropped. No descriptor is computed again."""
-    catalog = archive.catalog
+    new place keep theirs; the old duplicates are dropped. No descriptor is computed again.
+    `indexer` (index.ingest.indexer.Indexer) holds the writer lock and drops descriptors."""
     old = _known(catalog, old)
     if not os.path.exists(new):
         raise RootError(f"no such file or folder: {new}")
@@ -116,8 +114,8 @@ def rename(archive, old: str, new: str) -> dict:
         raise RootError(f"{old} still exists; index {new} as a root of its own, or forget {old} first")
     if new == old or new.startswith(old.rstrip(os.sep) + os.sep) or old.startswith(new.rstrip(os.sep) + os.sep):
         raise RootError(f"{old} and {new} overlap; give the folder's new place outside its old one")
-    with archive._writer_lock():
-        moved, doubled = _repoint(archive, old, new)
+    with indexer.lock():
+        moved, doubled = _repoint(catalog, indexer, old, new)
     found = not_found = 0
     where, args = under_clause("path", new)
     for path, size in catalog.db.execute(f"select path, size from images where {where}", args):
@@ -129,12 +127,12 @@ def rename(archive, old: str, new: str) -> dict:
             "found": found, "not_found": not_found}
 
 
-def _repoint(archive, old: str, new: str) -> tuple[int, int]:
+def _repoint(catalog, indexer, old: str, new: str) -> tuple[int, int]:
     """Rows below `old` moved below `new` (the caller holds the writer lock); rows whose new path is
     already catalogued are dropped as doubles. Returns (rows re-pointed, doubles dropped)."""
-    doubled = archive.catalog.ids_taken_after_rename(old, new)
-    _drop(archive, doubled)
-    return archive.catalog.rename_root(old, new), len(doubled)
+    doubled = catalog.ids_taken_after_rename(old, new)
+    indexer.drop(doubled)
+    return catalog.rename_root(old, new), len(doubled)
 
 
 def drop_empty_gone_roots(catalog) -> None:
@@ -145,56 +143,27 @@ def drop_empty_gone_roots(catalog) -> None:
             catalog.forget_root(root)
 
 
-def adopt_resolved_roots(archive) -> int:
+def adopt_resolved_roots(catalog, indexer) -> int:
     """Roots recorded through a link (by versions that did not resolve them) re-pointed to their real
     path: the same files, so nothing is embedded again, and a folder indexed both through a link and
     directly keeps one row per file. The caller holds the writer lock."""
     moved = 0
-    for root in outermost(archive.catalog.known_roots()):
+    for root in outermost(catalog.known_roots()):
         real = os.path.realpath(root)
         overlap = real.startswith(root.rstrip(os.sep) + os.sep) or root.startswith(real.rstrip(os.sep) + os.sep)
         if real != root and os.path.exists(root) and not overlap:
-            moved += _repoint(archive, root, real)[0]
+            moved += _repoint(catalog, indexer, root, real)[0]
     return moved
 
 
-def forget(archive, root: str, *, even_if_present: bool = False) -> dict:
+def forget(catalog, indexer, root: str, *, even_if_present: bool = False) -> dict:
     """Drop the rows below `root` and their descriptors (the files are not touched)."""
-    catalog = archive.catalog
     root = _known(catalog, root)
     if not even_if_present and not is_gone(root):
         raise RootError(f"{root} still exists; forgetting it drops the descriptors of its images. Add "
                         "--even-if-present if that is what you want")
-    with archive._writer_lock():
+    with indexer.lock():
         ids = catalog.ids_under(root)
-        _drop(archive, ids)
+        indexer.drop(ids)
         catalog.forget_root(root)
     return {"root": root, "forgotten": len(ids)}
-
-
-def forget_ids(archive, ids: list[int]) -> int:
-    """Drop these rows and their descriptors (the caller holds the writer lock)."""
-    _drop(archive, ids)
-    return len(ids)
-
-
-def _drop(archive, ids: list[int]) -> None:
-    """Catalog rows first, then the stores: a crash in between leaves only orphan descriptors,
-    which the next run drops (`Archive.reconcile`), never rows without descriptors."""
-    if not ids:
-        return
-    archive.catalog.delete_images(ids)
-    gone = np.array(sorted(ids), np.int64)
-    for layer in archive.layer_names:
-        archive._writer(layer).remove(gone)
-    archive._save_stores()
-    _drop_thumbnails(archive, set(ids))
-
-
-def _drop_thumbnails(archive, ids: set[int]) -> None:
-    folder = archive.db / "thumbs"
-    if folder.is_dir():
-        for p in folder.glob("*.jpg"):
-            head = p.name.split("-")[0]
-            if head.isdigit() and int(head) in ids:
-                p.unlink(missing_ok=True)

@@ -187,6 +187,6 @@ def restore(manifest_path: str | os.PathLike, *, apply: bool = False) -> dict:
 
 
 def _write_json(path: str, data: dict) -> None:
-    from ..vectors.reader import atomic_write
+    from ..common.files import atomic_write
 
     atomic_write(Path(path), (json.dumps(data, indent=2) + "\n").encode())

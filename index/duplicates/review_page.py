@@ -150,6 +150,6 @@ def render(doc: dict, *, max_groups: int = MAX_GROUPS) -> str:
 def write(doc: dict, path: str | os.PathLike, *, max_groups: int = MAX_GROUPS) -> None:
     from pathlib import Path
 
-    from ..vectors.reader import atomic_write
+    from ..common.files import atomic_write
 
     atomic_write(Path(path), render(doc, max_groups=max_groups).encode("utf-8"))

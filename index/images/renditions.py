@@ -15,7 +15,7 @@ from pathlib import Path
 from PIL import Image
 
 from .decode import open_image
-from ..vectors.reader import atomic_write
+from ..common.files import atomic_write
 
 THUMB_SIZES = (128, 256, 512)
 DISPLAY_SIDE = 1600

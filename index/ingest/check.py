@@ -1,7 +1,6 @@
 """Verify an archive folder: SQLite integrity, catalog vs every vector store, manifest vs files, orphans."""
 from __future__ import annotations
 
-import fcntl
 import json
 import os
 import sqlite3
@@ -10,8 +9,13 @@ from pathlib import Path
 
 import numpy as np
 
+from ..common.errors import ArchiveError
+from ..common.locks import writer_running
+from ..db.catalog import Catalog
 from ..vectors import segments as sg
+from ..vectors.reader import Reader
 from ..vectors.segments import STORES
+from .indexer import Indexer
 
 
 @dataclass
@@ -39,18 +43,37 @@ class Report:
                 "findings": [f.__dict__ for f in self.findings]}
 
 
-def check(archive) -> Report:
+@dataclass
+class Parts:
+    """What check and repair work on: the catalog, the stores as this process reads them (its manifest
+    too), and the indexer (the writer lock, each layer's writer, checkpoints, reconcile, add)."""
+
+    catalog: Catalog
+    reader: Reader
+    indexer: Indexer
+
+    @property
+    def db(self) -> Path:
+        return self.reader.db
+
+    @property
+    def manifest(self) -> dict:
+        return self.reader.manifest
+
+
+def check(catalog, reader, indexer) -> Report:
     """Read-only: nothing is changed. See repair() for the fixes.
 
     While an indexer runs, only committed state is compared (the manifest read before and after the
     catalog and the store files, until both agree) and no fix is offered for the run in progress."""
+    parts = Parts(catalog, reader, indexer)
     report = Report()
-    if archive.catalog.damage:
-        report.checked["sqlite"] = archive.catalog.damage
-        report.add("error", f"the SQLite catalog is damaged: {archive.catalog.damage}", DAMAGED_FIX)
+    if parts.catalog.damage:
+        report.checked["sqlite"] = parts.catalog.damage
+        report.add("error", f"the SQLite catalog is damaged: {parts.catalog.damage}", DAMAGED_FIX)
         return report
     try:
-        _check_catalog_and_stores(archive, report)
+        _check_catalog_and_stores(parts, report)
     except sqlite3.DatabaseError as exc:
         report.add("error", f"the SQLite catalog is damaged: {exc}", DAMAGED_FIX)
     return report
@@ -60,22 +83,22 @@ DAMAGED_FIX = "restore catalog.sqlite from a backup; the vector stores alone can
 RUNNING_FIX = "an indexer is running on this database: run `kinscope check` again when it has finished"
 
 
-def _check_catalog_and_stores(archive, report: Report) -> None:
-    db = archive.db
-    result = archive.catalog.db.execute("PRAGMA integrity_check").fetchone()[0]
+def _check_catalog_and_stores(parts, report: Report) -> None:
+    db = parts.db
+    result = parts.catalog.db.execute("PRAGMA integrity_check").fetchone()[0]
     report.checked["sqlite"] = result
     if result != "ok":
         report.add("error", f"the SQLite catalog is damaged: {result}", DAMAGED_FIX)
         return
-    running = _indexer_running(archive)
-    ok_ids, pending = _consistent_state(archive, report, running)
+    running = writer_running(parts.db)
+    ok_ids, pending = _consistent_state(parts, report, running)
     report.checked["images"] = int(len(ok_ids))
     if pending and running:
         report.add("info", f"an indexer is running: {len(pending)} images are waiting for descriptors", count=len(pending))
     elif pending:
         report.add("warning", f"{len(pending)} images are waiting for descriptors (an interrupted run)",
                    "run `kinscope index` again, or `kinscope check --repair`", len(pending))
-    for learned in archive.manifest["whitening"]["learned"].values():
+    for learned in parts.manifest["whitening"]["learned"].values():
         if not (db / learned["file"]).exists():
             report.add("error", f"the whitening file {learned['file']} named in the manifest is missing",
                        "rebuild the archive: its descriptors cannot be whitened again without it")
@@ -83,12 +106,12 @@ def _check_catalog_and_stores(archive, report: Report) -> None:
     if temps:
         report.add("warning", f"{len(temps)} temporary files left by an interrupted write", "`--repair` removes them",
                    len(temps))
-    _check_leftovers(archive, report)
-    _check_missing_files(archive, report, running)
-    _check_thumbnails(archive, ok_ids, report)
+    _check_leftovers(parts, report)
+    _check_missing_files(parts, report, running)
+    _check_thumbnails(parts, ok_ids, report)
 
 
-def _consistent_state(archive, report: Report, running: bool, attempts: int = 20):
+def _consistent_state(parts, report: Report, running: bool, attempts: int = 20):
     """The catalog's ok and pending ids, with every layer checked against the same committed manifest.
 
     An indexer saves the stores, then the manifest, then marks the catalog rows: a manifest that is the
@@ -96,15 +119,15 @@ def _consistent_state(archive, report: Report, running: bool, attempts: int = 20
     catalog had marked. Descriptors of rows not yet marked are the run's work in progress."""
     for _ in range(attempts if running else 1):
         if running:
-            archive._reread_manifest()
-        generation = archive.manifest.get("generation")
-        rows = archive.catalog.db.execute("select id, status from images").fetchall()
+            parts.reader.reread_manifest()
+        generation = parts.manifest.get("generation")
+        rows = parts.catalog.db.execute("select id, status from images").fetchall()
         ok_ids = np.array(sorted(i for i, status in rows if status == "ok"), np.int64)
         pending = [i for i, status in rows if status == "pending"]
         layers = Report()
-        for layer in archive.manifest["layers"]:
-            _check_layer(archive, layer, ok_ids, layers, running)
-        if not running or (not archive._reread_manifest() and archive.manifest.get("generation") == generation):
+        for layer in parts.manifest["layers"]:
+            _check_layer(parts, layer, ok_ids, layers, running)
+        if not running or (not parts.reader.reread_manifest() and parts.manifest.get("generation") == generation):
             for finding in layers.findings:
                 finding.fix = RUNNING_FIX if running and finding.fix else finding.fix
             report.findings += layers.findings
@@ -119,13 +142,13 @@ def _temporary_files(db: Path) -> list[Path]:
     return sorted(db.glob(".*.tmp")) + sorted((db / STORES).glob("*/.*.tmp"))
 
 
-def _stored_ids(archive, layer: dict, report: Report) -> np.ndarray | None:
+def _stored_ids(parts, layer: dict, report: Report) -> np.ndarray | None:
     """The ids a layer's store holds, every file it names read in full; None if it cannot be read."""
     name = layer["name"]
-    state = archive.manifest.get("stores", {}).get(name)
+    state = parts.manifest.get("stores", {}).get(name)
     if not state:  # a store from before segments: one FAISS file
         try:
-            store = archive.store(name)
+            store = parts.reader.store(name)
         except Exception as exc:  # an unreadable FAISS file
             report.add("error", f"the vector store of layer {name} cannot be read: {exc}",
                        "`--repair` rebuilds it by re-embedding")
@@ -137,30 +160,30 @@ def _stored_ids(archive, layer: dict, report: Report) -> np.ndarray | None:
         report.add("error", f"layer {name}: store dimension {state['dim']} != manifest {layer['dim']}")
     if state.get("codec"):
         try:
-            sg.read_codec(archive.db, state["codec"])
+            sg.read_codec(parts.db, state["codec"])
         except (FileNotFoundError, sg.StoreFileError) as exc:
             report.add("error", f"layer {name}: its trained index {state['codec']} is missing or unreadable ({exc})",
                        "`--repair` sets the layer's files aside and re-embeds every image for it")
             return None
-    parts = []
+    found = []
     for entry in state.get("segments", []):
         segment = sg.Segment.from_dict(entry)
         try:
-            parts.append(sg.read_segment(archive.db, segment, state.get("codec"))["ids"])
+            found.append(sg.read_segment(parts.db, segment, state.get("codec"))["ids"])
         except (FileNotFoundError, sg.StoreFileError) as exc:
             report.add("error", f"layer {name}: the segment {segment.file} is missing or unreadable ({exc})",
                        f"`--repair` sets it aside and re-embeds its {segment.vectors} images", segment.vectors)
-    return np.concatenate(parts) if parts else np.zeros(0, np.int64)
+    return np.concatenate(found) if found else np.zeros(0, np.int64)
 
 
-def _check_layer(archive, layer: dict, ok_ids: np.ndarray, report: Report, running: bool = False) -> None:
+def _check_layer(parts, layer: dict, ok_ids: np.ndarray, report: Report, running: bool = False) -> None:
     name = layer["name"]
-    if not archive.manifest.get("stores", {}).get(name) and not (archive.db / layer["file"]).exists():
+    if not parts.manifest.get("stores", {}).get(name) and not (parts.db / layer["file"]).exists():
         if len(ok_ids):
             report.add("error", f"the vector store of layer {name} is missing",
                        "`--repair` re-embeds every image for it")
         return
-    stored = _stored_ids(archive, layer, report)
+    stored = _stored_ids(parts, layer, report)
     if stored is None:
         return
     report.checked[f"layer {name}"] = int(len(stored))
@@ -181,47 +204,34 @@ def _check_layer(archive, layer: dict, ok_ids: np.ndarray, report: Report, runni
                    "`--repair` embeds them again, once", dupes)
 
 
-def _indexer_running(archive) -> bool:
-    try:
-        with open(archive.db / "indexer.lock", "a+") as fh:
-            try:
-                fcntl.flock(fh, fcntl.LOCK_SH | fcntl.LOCK_NB)
-            except BlockingIOError:
-                return True
-            fcntl.flock(fh, fcntl.LOCK_UN)
-    except OSError:
-        return False
-    return False
-
-
-def _leftovers(archive) -> list[str]:
+def _leftovers(parts) -> list[str]:
     """Store files no committed state names (an interrupted write's); none while an indexer runs."""
-    if _indexer_running(archive):
+    if writer_running(parts.db):
         return []
     out = []
-    for layer in archive.manifest["layers"]:
+    for layer in parts.manifest["layers"]:
         folder = sg.layer_folder(layer["name"])
-        keep = sg.referenced(archive.manifest.get("stores", {}).get(layer["name"]))
-        base = archive.db / folder
+        keep = sg.referenced(parts.manifest.get("stores", {}).get(layer["name"]))
+        base = parts.db / folder
         if base.is_dir():
             out += [f"{folder}/{p.name}" for p in base.iterdir()
                     if p.is_file() and sg.is_store_file(p.name) and f"{folder}/{p.name}" not in keep]
     return sorted(out)
 
 
-def _check_leftovers(archive, report: Report) -> None:
-    left = _leftovers(archive)
+def _check_leftovers(parts, report: Report) -> None:
+    left = _leftovers(parts)
     if left:
         report.add("warning", f"{len(left)} store files are named by no checkpoint (left by an interrupted run)",
                    "`--repair` removes them, as does the next `kinscope index`", len(left))
 
 
-def _check_missing_files(archive, report: Report, running: bool) -> None:
+def _check_missing_files(parts, report: Report, running: bool) -> None:
     """Rows whose files are gone: whole roots that vanished, and single files (one stat per row)."""
     from ..db.roots import missing
 
-    found = missing(archive)
-    db = archive.db
+    found = missing(parts.catalog)
+    db = parts.db
     for root, count in found["gone_roots"].items():
         report.add("warning", f"{count} catalogued images are below {root}, which no longer exists (or is empty)",
                    f"if it moved: `kinscope roots rename {root} NEWPATH --db {db}` (nothing is embedded again); "
@@ -235,8 +245,8 @@ def _check_missing_files(archive, report: Report, running: bool) -> None:
                    "or put the files back", n)
 
 
-def _check_thumbnails(archive, ok_ids: np.ndarray, report: Report) -> None:
-    folder = archive.db / "thumbs"
+def _check_thumbnails(parts, ok_ids: np.ndarray, report: Report) -> None:
+    folder = parts.db / "thumbs"
     if not folder.is_dir():
         return
     alive = set(ok_ids.tolist())
@@ -250,118 +260,119 @@ def _unsound(result: str) -> str | None:
     return None if result == "ok" else result.splitlines()[0]
 
 
-class RepairRefused(Exception):
+class RepairRefused(ArchiveError):
     """--repair would do harm; the message says why and what to do instead."""
 
 
-def repair(archive, *, progress: bool = True) -> dict:
+def repair(catalog, reader, indexer, *, progress: bool = True) -> dict:
     """Fix what can be fixed without re-embedding, then re-embed only what must be.
 
     Files missing below roots that still exist are forgotten; a root that is gone entirely is left to
     `kinscope roots rename/forget` (a disk not mounted must not cost its descriptors)."""
-    from ..db.roots import forget_ids, missing
+    from ..db.roots import missing
 
-    damage = archive.catalog.damage or _unsound(archive.catalog.quick_check())
+    parts = Parts(catalog, reader, indexer)
+    damage = parts.catalog.damage or _unsound(parts.catalog.quick_check())
     if damage:
         raise RepairRefused(f"the catalog is damaged ({damage}); --repair would lose descriptors. "
                             f"{DAMAGED_FIX[0].upper()}{DAMAGED_FIX[1:]}; nothing was changed")
-    with archive._writer_lock():  # no indexer may run meanwhile
+    with parts.indexer.lock():  # no indexer may run meanwhile
         done = {"temporary_files": 0, "thumbnails": 0}
-        gone = missing(archive)["ids"]
+        gone = missing(parts.catalog)["ids"]
         if gone:
-            done["forgotten_missing"] = forget_ids(archive, gone)
-        for p in _temporary_files(archive.db):
+            done["forgotten_missing"] = parts.indexer.drop(gone)
+        for p in _temporary_files(parts.db):
             p.unlink()
             done["temporary_files"] += 1
         changed = False
-        for layer in archive.manifest["layers"]:
-            changed |= _set_aside_unreadable(archive, layer, done)
-            writer = archive._writer(layer["name"])
+        for layer in parts.manifest["layers"]:
+            changed |= _set_aside_unreadable(parts, layer, done)
+            writer = parts.indexer.writer(layer["name"])
             ids = writer.ids()
             unique, counts = np.unique(ids, return_counts=True)
             doubled = unique[counts > 1]
             if len(doubled):  # drop every copy; they are embedded again below
                 writer.remove(doubled)
-                archive.catalog.set_status(doubled.tolist(), "pending")
+                parts.catalog.set_status(doubled.tolist(), "pending")
                 changed = True
         if changed:
-            archive._save_stores()
+            parts.indexer.save_stores()
         removed = []
-        for layer in archive.manifest["layers"]:
-            removed += archive._writer(layer["name"]).remove_leftovers()
+        for layer in parts.manifest["layers"]:
+            removed += parts.indexer.writer(layer["name"]).remove_leftovers()
         if removed:
             done["leftover_files"] = len(removed)
-        done.update(archive.reconcile())  # orphans dropped, missing ones queued as pending
-        alive = set(archive.catalog.ids_with_status("ok"))
-        folder = archive.db / "thumbs"
+        done.update(parts.indexer.reconcile())  # orphans dropped, missing ones queued as pending
+        alive = set(parts.catalog.ids_with_status("ok"))
+        folder = parts.db / "thumbs"
         if folder.is_dir():
             for p in folder.glob("*.jpg"):
                 head = p.name.split("-")[0]
                 if not head.isdigit() or int(head) not in alive:
                     p.unlink()
                     done["thumbnails"] += 1
-    pending = archive.catalog.pending()
+    pending = parts.catalog.pending()
     done["reembedded"] = 0
     if pending:
-        roots = _roots_for(archive, [p for _, p in pending])
+        roots = _roots_for(parts, [p for _, p in pending])
         if roots:
-            report = archive.add(roots, progress=progress)
+            report = parts.indexer.add(roots, progress=progress)
             done["reembedded"] = report["embedded"]
     return done
 
 
-def _set_aside(archive, file: str, done: dict) -> None:
+def _set_aside(parts, file: str, done: dict) -> None:
     """Rename a damaged file out of the way (never deleted) and note it."""
-    path = archive.db / file
+    path = parts.db / file
     if path.exists():
         aside = path.with_name(path.name + ".unreadable")
         os.replace(path, aside)
-        done.setdefault("set_aside", []).append(os.path.relpath(aside, archive.db))
+        done.setdefault("set_aside", []).append(os.path.relpath(aside, parts.db))
 
 
-def _set_aside_unreadable(archive, layer: dict, done: dict) -> bool:
+def _set_aside_unreadable(parts, layer: dict, done: dict) -> bool:
     """Drop the files of a layer's store that cannot be read from its state (their images are then
     missing, and re-embedded by reconcile + add). True if the state changed."""
     name = layer["name"]
-    stores = archive.manifest.setdefault("stores", {})
+    stores = parts.manifest.setdefault("stores", {})
     state = stores.get(name)
     if not state:
-        legacy = archive.db / layer["file"]
+        legacy = parts.db / layer["file"]
         if legacy.exists():
             try:
-                archive._writer(name)
+                parts.indexer.writer(name)
             except Exception:
-                archive._writers.pop(name, None)
-                _set_aside(archive, layer["file"], done)
+                parts.indexer.forget_writer(name)
+                _set_aside(parts, layer["file"], done)
                 return True
         return False
     if state.get("codec"):
         try:
-            sg.read_codec(archive.db, state["codec"])
+            sg.read_codec(parts.db, state["codec"])
         except (FileNotFoundError, sg.StoreFileError):
             for file in sorted(sg.referenced(state)):
-                _set_aside(archive, file, done)
+                _set_aside(parts, file, done)
             stores[name] = None
-            archive._writers.pop(name, None)
+            parts.indexer.forget_writer(name)
             return True
     good = []
     for entry in state.get("segments", []):
         try:
-            sg.read_segment(archive.db, sg.Segment.from_dict(entry), state.get("codec"))
+            sg.read_segment(parts.db, sg.Segment.from_dict(entry), state.get("codec"))
             good.append(entry)
         except (FileNotFoundError, sg.StoreFileError):
-            _set_aside(archive, entry["file"], done)
+            _set_aside(parts, entry["file"], done)
     if len(good) == len(state.get("segments", [])):
         return False
     stores[name] = {**state, "segments": good}
-    archive._writers.pop(name, None)
+    parts.indexer.forget_writer(name)
     return True
 
 
-def _roots_for(archive, paths: list[str]) -> list[str]:
+def _roots_for(parts, paths: list[str]) -> list[str]:
     """The indexed roots (from earlier runs) that hold these paths and still exist."""
     roots = set()
-    for row in archive.catalog.db.query("select roots from runs"):
+    for row in parts.catalog.db.query("select roots from runs"):
         for root in json.loads(row["roots"] or "[]"):
             roots.add(root)
     chosen = [r for r in sorted(roots) if os.path.exists(r)

@@ -17,6 +17,7 @@ from typing import Callable
 import numpy as np
 from tqdm import tqdm
 
+from ..model.settings import layer_specs, weights_file
 from .pipeline import Job, RunCounts
 
 _WORKER_EMBEDDERS: dict[str, object] = {}  # per worker process: settings key -> Embedder (built once)
@@ -25,12 +26,11 @@ _WORKER_EMBEDDERS: dict[str, object] = {}  # per worker process: settings key ->
 def worker_settings(manifest: dict) -> dict:
     """What a worker needs to embed exactly as the archive does (no paths to the database)."""
     b = manifest["backbone"]
-    packaged = b["weights_source"] != "file named by the user"
     return {
         "backbone": b["name"],
-        "weights": None if packaged else b["weights_file"],
+        "weights": weights_file(b),
         "weights_sha256": b["weights_sha256"],
-        "layers": [{k: l[k] for k in ("name", "node", "channels", "stride")} for l in manifest["layers"]],
+        "layers": layer_specs(manifest),
         "p": manifest["pooling"]["p"],
     }
 
@@ -50,7 +50,7 @@ def _embedder(settings: dict):
         backbone = get_backbone(settings["backbone"], settings["weights"])
         if backbone.weights.sha256() != settings["weights_sha256"]:
             raise RuntimeError(f"this worker's weights for {settings['backbone']} differ from the archive's")
-        layers = [Layer(l["name"], l["node"], l["channels"], l["stride"]) for l in settings["layers"]]
+        layers = [Layer(**spec) for spec in settings["layers"]]
         _WORKER_EMBEDDERS[key] = Embedder(backbone, backbone.load(), layers, settings["p"], engine="torch")
     return _WORKER_EMBEDDERS[key]
 

@@ -73,7 +73,7 @@ class PCAWhitening:
         return int(self.projection_.shape[0])
 
     def save(self, path: Path) -> None:
-        from ..vectors.reader import atomic_write
+        from ..common.files import atomic_write
 
         import io
 

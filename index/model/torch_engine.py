@@ -3,8 +3,8 @@
 torch (eager, through torchvision's feature extractor) is the reference. The ONNX engine
 (index.onnx_engine, torch-free) runs the same extractor exported with GeM pooling inside the graph:
 each chosen layer's descriptor and channel peaks are graph outputs. export_onnx checks the exported
-model against torch before it is cached. `python -m index.model.torch_engine DB` exports the model for an
-archive in its own process, so an indexer that asked for it need never load torch.
+model against torch before it is cached. The indexer has it exported in a child process
+(index.model.child), so that it need never load torch.
 """
 from __future__ import annotations
 
@@ -109,7 +109,7 @@ def export_onnx(extractor: torch.nn.Module, names: list[str], input_size: int, p
     """Export with pooling inside and a dynamic batch axis, check it against torch, write `path` atomically."""
     import onnx
 
-    from ..vectors.reader import atomic_write
+    from ..common.files import atomic_write
 
     buf = io.BytesIO()
     dummy = torch.zeros(2, 3, input_size, input_size)
@@ -188,58 +188,3 @@ def make_engine(choice: str, extractor: torch.nn.Module, names: list[str], nodes
             raise EngineError(f"cannot export the model to ONNX: {exc}") from None
         print(f"kinscope: ONNX export failed ({exc}); using torch", file=sys.stderr)
         return torch_engine
-
-
-def export_for_archive(db: str) -> Path:
-    """Export (or find cached) the ONNX model of the archive in folder `db`; its path."""
-    from ..api import Archive, ArchiveError
-
-    archive = Archive.open(db)
-    embedder = archive.embedder
-    try:
-        embedder.use_engine("onnx", may_export=True)
-    except EngineError as exc:
-        raise ArchiveError(str(exc)) from None
-    return embedder.engine.path
-
-
-def new_manifest(asked: dict) -> dict:
-    """`Archive._new_manifest` for the settings in `asked` (from Archive._new_manifest_apart), as
-    {"manifest": ...} or {"error": message}."""
-    from pathlib import Path
-
-    from ..api import Archive, ArchiveError
-
-    try:
-        return {"manifest": Archive._new_manifest(Path(asked["db"]), asked["backbone"], asked["layers"],
-                                                  asked["gem_p"], asked["whiten"], asked["weights"])}
-    except ArchiveError as exc:
-        return {"error": str(exc)}
-
-
-def main(argv: list[str] | None = None) -> int:
-    """`python -m index.model.torch_engine DB`: the export in a process of its own (Archive.add calls it).
-    `python -m index.model.torch_engine --new-manifest` (settings as JSON on stdin): a new archive's manifest,
-    as JSON on stdout (Archive.open calls it when creating an archive in a process without torch)."""
-    import json
-
-    from ..api import ArchiveError
-
-    args = sys.argv[1:] if argv is None else argv
-    if args == ["--new-manifest"]:
-        answer = new_manifest(json.loads(sys.stdin.read()))
-        print(json.dumps(answer))
-        return 1 if "error" in answer else 0
-    if len(args) != 1:
-        print("usage: python -m index.model.torch_engine DB | --new-manifest", file=sys.stderr)
-        return 2
-    try:
-        print(export_for_archive(args[0]))
-    except ArchiveError as exc:
-        print(f"kinscope: {exc}", file=sys.stderr)
-        return 1
-    return 0
-
-
-if __name__ == "__main__":
-    sys.exit(main())

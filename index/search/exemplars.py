@@ -6,7 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..vectors.reader import atomic_write
+from ..common.files import atomic_write
 
 TOP_N = 8
 

@@ -1,49 +1,23 @@
-"""A layer's vectors as one in-memory FAISS index keyed by catalog id (what searches use), and
-atomic file writes.
+"""The readers' side of the stores: a layer's vectors as one in-memory FAISS index keyed by catalog
+id (VectorStore, what searches use), and the stores of an archive as one process reads them (Reader).
 
 The index is exact inner-product search (flat) or IVF with 8-bit scalar quantization (see
-index.vector_index); index.layer_store chooses and builds it, segment by segment on disk, and
-index.segments assembles it for readers. Scores are inner products of L2-normalised vectors
-(cosine similarities; with SQ8 codes to about 1e-3).
+index.vectors.kinds); the indexer's writer (index.vectors.writer) chooses and builds it, segment by
+segment on disk, and index.vectors.segments assembles it for readers. Scores are inner products of
+L2-normalised vectors (cosine similarities; with SQ8 codes to about 1e-3).
 """
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
-from typing import BinaryIO, Callable
+from typing import Callable
 
 import faiss
 import numpy as np
 
+from ..common.errors import ArchiveError
+from ..common.files import atomic_write
 from . import kinds as vi
-
-
-def atomic_write(path: Path, data: bytes | Callable[[BinaryIO], None]) -> None:
-    """Write to a temporary file in the same folder, fsync, rename over the target, fsync the folder.
-
-    `data` is the bytes, or a function that writes them to the open file (streams large indexes).
-    """
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            if callable(data):
-                data(fh)
-            else:
-                fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    dir_fd = os.open(path.parent, os.O_RDONLY)
-    try:
-        os.fsync(dir_fd)
-    finally:
-        os.close(dir_fd)
+from .segments import StoreFileError, assemble, update
 
 
 class VectorStore:
@@ -126,3 +100,84 @@ class VectorStore:
         # What was measured at build time is kept only if it describes this very index.
         keep = measured if measured and all(measured.get(k, v) == v for k, v in info.items() if k != "vectors") else None
         return cls(index.d, index, measured={k: v for k, v in (keep or {}).items() if k not in info})
+
+
+class Reader:
+    """Every layer's store as this process reads it: loaded on first use from the files the manifest
+    names (every segment in one FAISS index), then kept in step with the manifest's commits.
+
+    `manifest` is the archive's own dict, shared with its indexer; it is replaced in place (never
+    rebound) when a newer commit is read. `read` reads the manifest file anew (None if absent)."""
+
+    def __init__(self, db: Path, manifest: dict, read: Callable[[], dict | None]):
+        self.db = Path(db)
+        self.manifest = manifest
+        self._read = read
+        self._stores: dict[str, VectorStore] = {}
+
+    def store(self, layer: str) -> VectorStore:
+        """Layer `layer` (its manifest name) as of the last committed checkpoint."""
+        if layer not in self._stores:
+            self._stores[layer] = self._load(layer)
+        return self._stores[layer]
+
+    def _load(self, layer: str, attempts: int = 5) -> VectorStore:
+        for attempt in range(attempts):
+            entry = next(l for l in self.manifest["layers"] if l["name"] == layer)
+            state = self.manifest.get("stores", {}).get(layer)
+            try:
+                if state:
+                    files: dict = {}
+                    store = VectorStore(int(state["dim"]), assemble(self.db, state, files),
+                                        measured=state.get("measured"))
+                    store.files = files
+                    return store
+                legacy = self.db / entry["file"]  # a store from before segments: one FAISS file
+                if legacy.exists():
+                    return VectorStore.load(legacy, measured=self.manifest.get("indexes", {}).get(layer))
+                return VectorStore(entry["dim"])
+            except FileNotFoundError:
+                # An indexer committed a newer state and removed files of the one read: read it again.
+                if attempt + 1 == attempts or not self.reread_manifest():
+                    raise ArchiveError(f"the vector store of layer {layer} names files that are missing; "
+                                       "run `kinscope check`") from None
+            except StoreFileError as exc:
+                raise ArchiveError(f"{exc}; run `kinscope check`") from None
+        raise AssertionError("unreachable")
+
+    def reread_manifest(self) -> bool:
+        """Take the manifest on disk if an indexer committed since it was read; True if it had."""
+        try:
+            current = self._read()
+        except ValueError:
+            return False
+        changed = bool(current) and current.get("generation") != self.manifest.get("generation")
+        if changed:
+            self.manifest.clear()
+            self.manifest.update(current)
+        return changed
+
+    def refresh(self) -> bool:
+        """Pick up a newer commit: loaded stores read only the segments that changed (an indexer's
+        checkpoint replaces its tail and adds a few); after a rebuild, or if that fails, a store is
+        loaded anew when next needed. True if anything changed."""
+        before = self.manifest.get("stores", {})
+        if not self.reread_manifest():
+            return False
+        self.follow(before)
+        return True
+
+    def follow(self, before: dict) -> None:
+        """Loaded stores follow the manifest's new states (from `before`, the states they were loaded
+        at): by the segments that changed, or loaded anew when next needed."""
+        for layer, store in list(self._stores.items()):
+            old, new = before.get(layer), self.manifest.get("stores", {}).get(layer)
+            try:
+                kept = bool(old and new and store.files is not None
+                            and update(store.index, store.files, self.db, old, new))
+            except (OSError, StoreFileError, RuntimeError):
+                kept = False
+            if kept:
+                store.measured = dict(new.get("measured") or {})
+            else:
+                del self._stores[layer]

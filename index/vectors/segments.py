@@ -20,7 +20,7 @@ import faiss
 import numpy as np
 
 from . import kinds as vi
-from .reader import atomic_write
+from ..common.files import atomic_write
 
 STORES = "stores"
 

@@ -1,37 +1,9 @@
-"""Backbone registry: a name (and optionally a weights file) -> a described, loadable network.
-
-Importing this package does not import torch (an indexer running a cached ONNX model never needs
-it); the model definitions are imported when a backbone is asked for.
-"""
+"""Backbones: what each network describes about itself (base), the registry of names (registry), and
+the model definitions (efficientnet_lite, torchvision_models; they import torch, the rest does not)."""
 from __future__ import annotations
 
-from pathlib import Path
+from .base import USER_WEIGHTS, Backbone, BackboneError, Weights
+from .registry import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, TORCHVISION_NAMES, get_backbone
 
-from .base import Backbone, BackboneError, Weights
-
-DEFAULT_BACKBONE = "efficientnet_lite0"
-TORCHVISION_NAMES = ("resnet18", "resnet50", "mobilenet_v3_small", "mobilenet_v3_large")
-NAMES = (DEFAULT_BACKBONE,) + TORCHVISION_NAMES
-
-# Plain-language hints for the layer presets, early to late.
-PRESET_HINTS = {
-    "colour": "colour, edges and fine grain",
-    "texture": "texture and repeated motifs",
-    "parts": "shapes and object parts",
-    "objects": "whole objects and scenes",
-}
-
-__all__ = ["Backbone", "BackboneError", "Weights", "DEFAULT_BACKBONE", "NAMES", "PRESET_HINTS", "get_backbone"]
-
-
-def get_backbone(name: str = DEFAULT_BACKBONE, weights: str | Path | None = None) -> Backbone:
-    """Describe backbone ``name``; raises BackboneError with a plain message if it cannot be had."""
-    if name == DEFAULT_BACKBONE:
-        from .efficientnet_lite import efficientnet_lite0
-
-        return efficientnet_lite0(weights)
-    if name in TORCHVISION_NAMES:
-        from .torchvision_models import torchvision_backbone
-
-        return torchvision_backbone(name, weights)
-    raise BackboneError(f"unknown backbone {name!r}; choose one of: {', '.join(NAMES)}")
+__all__ = ["Backbone", "BackboneError", "Weights", "USER_WEIGHTS", "DEFAULT_BACKBONE", "NAMES", "PRESET_HINTS",
+           "TORCHVISION_NAMES", "get_backbone"]

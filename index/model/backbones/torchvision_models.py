@@ -11,8 +11,7 @@ from pathlib import Path
 import torch
 import torchvision
 
-from . import TORCHVISION_NAMES
-from .base import Backbone, BackboneError, Weights
+from .base import USER_WEIGHTS, Backbone, BackboneError, Weights
 
 # name -> presets (colour, texture, parts, objects) and the nodes worth listing
 MODELS = {
@@ -34,7 +33,6 @@ MODELS = {
     },
 }
 
-assert tuple(MODELS) == TORCHVISION_NAMES, "the registry (backbones/__init__.py) lists the same models"
 
 def imagenet_categories() -> tuple[str, ...]:
     """The 1000 ImageNet class names as torchvision's weights metadata lists them."""
@@ -56,7 +54,7 @@ def torchvision_backbone(name: str, weights_file: str | Path | None = None) -> B
         f"TORCH_HOME), or pass --weights FILE with a state dict for torchvision's {name}."
     )
     if weights_file:
-        path, source = Path(weights_file), "file named by the user"
+        path, source = Path(weights_file), USER_WEIGHTS
         hint = f"weights file not found: {path}"
     else:
         path, source = cached, "torchvision's cache"
