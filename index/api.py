@@ -279,7 +279,7 @@ class Archive:
         return self.catalog.folders()
 
     def thumbnail(self, item_id: int, size: int = 256) -> bytes:
-        return self._image_call(media.thumbnail, item_id, size, self.db / "thumbs")
+        return self._image_call(media.thumbnail, item_id, size, self.db / media.THUMBS)
 
     def display_image(self, item_id: int) -> bytes:
         return self._image_call(media.display, item_id)

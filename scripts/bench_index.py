@@ -115,7 +115,7 @@ def make_set(folder: Path, n: int, size: tuple[int, int], seed: int) -> list[str
 def naive(paths: list[str], embedder) -> float:
     """Images per second, one at a time: full decode, torch eager, batch of 1."""
     from index.images.decode import open_image
-    from index.model.torch_embedder import pool
+    from index.model.torch_engine import pool
 
     t = time.perf_counter()
     for p in paths:

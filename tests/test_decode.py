@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 from PIL import Image, PngImagePlugin
 
-from index.images import decode
+from index.images import decode, metadata
 from index.images.decode import (
     DEFAULT_MAX_PIXELS,
     SUPPORTED_EXTENSIONS,
@@ -898,7 +898,7 @@ def test_iptc_extended_length_dataset():
     # IIM extended DataSet: high bit of the length set, low bits = byte count of the real length.
     value = b"Long name"
     extended = bytes([0x1C, 2, 5]) + struct.pack(">H", 0x8004) + struct.pack(">I", len(value)) + value
-    assert decode._iim_records(extended) == {(2, 5): [value]}
+    assert metadata._iim_records(extended) == {(2, 5): [value]}
 
 
 def test_malformed_xmp_tolerated_and_other_sources_still_used():

@@ -5,7 +5,8 @@ import numpy as np
 import pytest
 
 from index.model.torch_embedder import Embedder
-from index.model.torch_engine import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path
+from index.model.choice import AUTO_EXPORT_MIN_IMAGES
+from index.model.onnx_engine import EngineError, cached_model_path
 from index.model.layers import resolve_layers
 
 
@@ -116,7 +117,7 @@ def test_pooling_equals_the_reference_gem_and_peaks(p):
     # Reference: index.pooling.gem (GeM as defined by Radenovic, Tolias and Chum) and torch's max.
     import torch
 
-    from index.model.torch_embedder import pool
+    from index.model.torch_engine import pool
     from index.model.pooling import gem, l2_normalize
 
     g = torch.Generator().manual_seed(0)

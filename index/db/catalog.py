@@ -10,6 +10,8 @@ from typing import Iterable
 
 import sqlite_utils
 
+from ..common.paths import below, is_inside, prefix
+
 # status of an image row: 'pending' (waiting for descriptors) or 'ok' (in every layer's store)
 IMAGE_COLUMNS = {
     "id": int,
@@ -107,10 +109,9 @@ class Catalog:
         """The folders of every image row below any of these folders (or equal to a root file)."""
         out = set()
         for root in roots:
-            prefix = root.rstrip(os.sep) + os.sep
-            query = ("select distinct folder from images where folder = ? or substr(folder, 1, ?) = ? "
-                     "or path = ?")
-            out.update(r[0] for r in self.db.execute(query, [root, len(prefix), prefix, root]).fetchall())
+            where, args = under_clause("folder", root)
+            query = f"select distinct folder from images where {where} or path = ?"
+            out.update(r[0] for r in self.db.execute(query, [*args, root]).fetchall())
         return out
 
     def rows_in_folder(self, folder: str) -> dict[str, dict]:
@@ -151,8 +152,8 @@ class Catalog:
         rows = self.db.execute("select id, path from images where status = 'pending' order by id").fetchall()
         if roots is None:
             return rows
-        prefixes = tuple(r.rstrip(os.sep) + os.sep for r in roots)
-        return [(i, p) for i, p in rows if p.startswith(prefixes) or p in roots]
+        inside = below(roots)
+        return [(i, p) for i, p in rows if inside(p)]
 
     def mark_embedded(self, rows: list[dict], run_id: int) -> None:
         stamp = now()
@@ -189,9 +190,8 @@ class Catalog:
         """Indexed items in id order, `limit` at a time, optionally below one folder."""
         where, args = "status = 'ok'", []
         if folder:
-            folder = folder.rstrip(os.sep)
-            where += " and (folder = ? or substr(folder, 1, ?) = ?)"
-            args += [folder, len(folder) + 1, folder + os.sep]
+            clause, args = under_clause("folder", folder.rstrip(os.sep))
+            where += f" and {clause}"
         total = self.db.execute(f"select count(*) from images where {where}", args).fetchone()[0]
         rows = list(self.db.query(f"select * from images where {where} order by id limit ? offset ?",
                                   [*args, int(limit), int(offset)]))
@@ -229,9 +229,13 @@ class Catalog:
 
     # --- roots: the folders (or files) earlier runs were given --------------------------------
     def known_roots(self) -> list[str]:
+        """Every folder (or file) any run was given, sorted (a run's unreadable list is skipped)."""
         roots: set[str] = set()
         for row in self.db.query("select roots from runs"):
-            roots.update(json.loads(row["roots"] or "[]"))
+            try:
+                roots.update(json.loads(row["roots"] or "[]"))
+            except ValueError:
+                continue
         return sorted(roots)
 
     def count_under(self, root: str) -> int:
@@ -263,7 +267,7 @@ class Catalog:
             self.db.execute(f"delete from failures where {where} and ? || substr(path, ?) in "
                             "(select path from failures)", [*args, new, n])
             self.db.execute(f"update failures set path = ? || substr(path, ?) where {where}", [new, n, *args])
-            self._rewrite_run_roots(lambda r: new + r[len(old):] if _is_under(r, old) else r)
+            self._rewrite_run_roots(lambda r: new + r[len(old):] if is_inside(r, old) else r)
         return count
 
     def forget_root(self, root: str) -> None:
@@ -272,7 +276,7 @@ class Catalog:
         where, args = under_clause("path", root)
         with self.db.conn:
             self.db.execute(f"delete from failures where {where}", args)
-            self._rewrite_run_roots(lambda r: None if _is_under(r, root) else r)
+            self._rewrite_run_roots(lambda r: None if is_inside(r, root) else r)
 
     def _rewrite_run_roots(self, fn) -> None:
         for run_id, raw in self.db.execute("select id, roots from runs").fetchall():
@@ -285,9 +289,8 @@ class Catalog:
     def failures_under(self, roots: Iterable[str]) -> dict[str, dict]:
         out = {}
         for root in roots:
-            prefix = root.rstrip(os.sep) + os.sep
-            q = "select * from failures where path = ? or substr(path, 1, ?) = ?"
-            for row in self.db.query(q, [root, len(prefix), prefix]):
+            where, args = under_clause("path", root)
+            for row in self.db.query(f"select * from failures where {where}", args):
                 out[row["path"]] = row
         return out
 
@@ -326,14 +329,10 @@ class Catalog:
         self.db.close()
 
 
-def _is_under(path: str, root: str) -> bool:
-    return path == root or path.startswith(root.rstrip(os.sep) + os.sep)
-
-
 def under_clause(column: str, root: str) -> tuple[str, list]:
     """SQL for "column is root or lies below it" (no LIKE: paths may hold % and _)."""
-    prefix = root.rstrip(os.sep) + os.sep
-    return f"({column} = ? or substr({column}, 1, ?) = ?)", [root, len(prefix), prefix]
+    start = prefix(root)
+    return f"({column} = ? or substr({column}, 1, ?) = ?)", [root, len(start), start]
 
 
 def _uri(path: Path, mode: str) -> str:

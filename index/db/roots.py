@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 
 from ..common.errors import ArchiveError
+from ..common.paths import below, is_inside, strictly_inside
 from .catalog import under_clause
 
 
@@ -19,7 +20,7 @@ class RootError(ArchiveError):
 
 def outermost(roots: list[str]) -> list[str]:
     """The roots not inside another one."""
-    return [r for r in roots if not any(o != r and r.startswith(o.rstrip(os.sep) + os.sep) for o in roots)]
+    return [r for r in roots if not any(strictly_inside(r, o) for o in roots)]
 
 
 def is_gone(root: str) -> bool:
@@ -66,7 +67,7 @@ def listing(catalog) -> list[dict]:
     top = outermost(roots)
     out = []
     for root in roots:
-        outer = next((o for o in top if o != root and root.startswith(o.rstrip(os.sep) + os.sep)), None)
+        outer = next((o for o in top if strictly_inside(root, o)), None)
         state = f"inside {outer}" if outer else "gone" if is_gone(root) else "present"
         out.append({"root": root, "rows": catalog.count_under(root), "state": state})
     return out
@@ -77,10 +78,10 @@ def missing(catalog) -> dict:
 
     Rows below a gone root are only counted; every other row's file is looked up (one stat each)."""
     gone = gone_roots(catalog)
-    skip = tuple(r.rstrip(os.sep) + os.sep for r in gone)
+    skip = below(gone)
     ids, paths = [], []
     for image_id, path in catalog.iter_paths():
-        if path in gone or path.startswith(skip):
+        if skip(path):
             continue
         if not os.path.isfile(path):
             ids.append(image_id)
@@ -112,7 +113,7 @@ def rename(catalog, indexer, old: str, new: str) -> dict:
     new = _resolved(new)
     if not is_gone(old):
         raise RootError(f"{old} still exists; index {new} as a root of its own, or forget {old} first")
-    if new == old or new.startswith(old.rstrip(os.sep) + os.sep) or old.startswith(new.rstrip(os.sep) + os.sep):
+    if is_inside(new, old) or is_inside(old, new):
         raise RootError(f"{old} and {new} overlap; give the folder's new place outside its old one")
     with indexer.lock():
         moved, doubled = _repoint(catalog, indexer, old, new)
@@ -150,7 +151,7 @@ def adopt_resolved_roots(catalog, indexer) -> int:
     moved = 0
     for root in outermost(catalog.known_roots()):
         real = os.path.realpath(root)
-        overlap = real.startswith(root.rstrip(os.sep) + os.sep) or root.startswith(real.rstrip(os.sep) + os.sep)
+        overlap = strictly_inside(real, root) or strictly_inside(root, real)
         if real != root and os.path.exists(root) and not overlap:
             moved += _repoint(catalog, indexer, root, real)[0]
     return moved

@@ -8,30 +8,19 @@ only return the plan.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 from datetime import datetime, timezone
 from pathlib import Path
+
+from ..common.files import atomic_write, sha256_file
+from ..common.paths import is_inside
 
 MANIFEST_FORMAT = "kinscope-quarantine/1"
 
 
 class QuarantineError(ValueError):
     """A request that cannot be carried out safely; nothing has been moved."""
-
-
-def sha256_file(path: str) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
-def _inside(path: str, folder: str) -> bool:
-    path, folder = os.path.realpath(path), os.path.realpath(folder)
-    return path == folder or path.startswith(folder.rstrip(os.sep) + os.sep)
 
 
 def _device(path: str) -> int:
@@ -79,7 +68,7 @@ def plan(doc: dict, dest: str | os.PathLike, roots: list[str]) -> list[dict]:
     """Where each leaving file would go: dest / (its path relative to the common folder of them all)."""
     dest = os.path.abspath(os.fspath(dest))
     for root in roots:
-        if _inside(dest, root) or _inside(root, dest):
+        if is_inside(dest, root, resolve=True) or is_inside(root, dest, resolve=True):
             raise QuarantineError(
                 f"the quarantine folder {dest} must be outside the indexed folder {root} (and not contain it): "
                 "the next index run would take the moves for renames")
@@ -187,6 +176,4 @@ def restore(manifest_path: str | os.PathLike, *, apply: bool = False) -> dict:
 
 
 def _write_json(path: str, data: dict) -> None:
-    from ..common.files import atomic_write
-
     atomic_write(Path(path), (json.dumps(data, indent=2) + "\n").encode())

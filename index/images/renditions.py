@@ -11,13 +11,16 @@ import io
 import os
 import stat
 from pathlib import Path
+from typing import Iterator
 
 from PIL import Image
 
 from .decode import open_image
 from ..common.files import atomic_write
+from ..common.paths import below
 
 THUMB_SIZES = (128, 256, 512)
+THUMBS = "thumbs"  # the thumbnail cache, in the database folder
 DISPLAY_SIDE = 1600
 
 
@@ -37,7 +40,7 @@ def checked_file(row: dict, roots: list[str]):
     and its size and modification time are still the catalog's; Unservable otherwise. The checks
     are made on the open file, so a link re-pointed meanwhile cannot slip another file in."""
     real = os.path.realpath(row["path"])
-    if not any(real == r or real.startswith(r.rstrip(os.sep) + os.sep) for r in roots):
+    if not below(roots)(real):
         raise Unservable("its file lies outside the indexed folders (a link pointing elsewhere?)")
     with open(real, "rb") as fh:
         st = os.fstat(fh.fileno())
@@ -65,6 +68,14 @@ def thumbnail(row: dict, size: int, cache: Path, source=None) -> bytes:
     except OSError:
         pass  # a read-only database folder: served without a cache
     return data
+
+
+def cached_thumbnails(cache: Path) -> Iterator[tuple[Path, int | None]]:
+    """Each cached thumbnail file, with the catalog id its name starts with (None: not one of ours)."""
+    if Path(cache).is_dir():
+        for p in Path(cache).glob("*.jpg"):
+            head = p.name.split("-")[0]
+            yield p, int(head) if head.isdigit() else None
 
 
 def display(row: dict, source=None) -> bytes:

@@ -1,7 +1,6 @@
 """Verify an archive folder: SQLite integrity, catalog vs every vector store, manifest vs files, orphans."""
 from __future__ import annotations
 
-import json
 import os
 import sqlite3
 from dataclasses import dataclass, field
@@ -11,7 +10,9 @@ import numpy as np
 
 from ..common.errors import ArchiveError
 from ..common.locks import writer_running
+from ..common.paths import is_inside, strictly_inside
 from ..db.catalog import Catalog
+from ..images.renditions import THUMBS, cached_thumbnails
 from ..vectors import segments as sg
 from ..vectors.reader import Reader
 from ..vectors.segments import STORES
@@ -246,11 +247,8 @@ def _check_missing_files(parts, report: Report, running: bool) -> None:
 
 
 def _check_thumbnails(parts, ok_ids: np.ndarray, report: Report) -> None:
-    folder = parts.db / "thumbs"
-    if not folder.is_dir():
-        return
     alive = set(ok_ids.tolist())
-    orphans = [p for p in folder.glob("*.jpg") if not p.name.split("-")[0].isdigit() or int(p.name.split("-")[0]) not in alive]
+    orphans = [p for p, image_id in cached_thumbnails(parts.db / THUMBS) if image_id not in alive]
     if orphans:
         report.add("info", f"{len(orphans)} cached thumbnails belong to images no longer indexed",
                    "`--repair` removes them", len(orphans))
@@ -304,13 +302,10 @@ def repair(catalog, reader, indexer, *, progress: bool = True) -> dict:
             done["leftover_files"] = len(removed)
         done.update(parts.indexer.reconcile())  # orphans dropped, missing ones queued as pending
         alive = set(parts.catalog.ids_with_status("ok"))
-        folder = parts.db / "thumbs"
-        if folder.is_dir():
-            for p in folder.glob("*.jpg"):
-                head = p.name.split("-")[0]
-                if not head.isdigit() or int(head) not in alive:
-                    p.unlink()
-                    done["thumbnails"] += 1
+        for p, image_id in cached_thumbnails(parts.db / THUMBS):
+            if image_id not in alive:
+                p.unlink()
+                done["thumbnails"] += 1
     pending = parts.catalog.pending()
     done["reembedded"] = 0
     if pending:
@@ -371,11 +366,6 @@ def _set_aside_unreadable(parts, layer: dict, done: dict) -> bool:
 
 def _roots_for(parts, paths: list[str]) -> list[str]:
     """The indexed roots (from earlier runs) that hold these paths and still exist."""
-    roots = set()
-    for row in parts.catalog.db.query("select roots from runs"):
-        for root in json.loads(row["roots"] or "[]"):
-            roots.add(root)
-    chosen = [r for r in sorted(roots) if os.path.exists(r)
-              and any(p == r or p.startswith(r.rstrip(os.sep) + os.sep) for p in paths)]
+    chosen = [r for r in parts.catalog.known_roots() if os.path.exists(r) and any(is_inside(p, r) for p in paths)]
     # Drop roots nested in other chosen roots.
-    return [r for r in chosen if not any(r != o and r.startswith(o.rstrip(os.sep) + os.sep) for o in chosen)]
+    return [r for r in chosen if not any(strictly_inside(r, o) for o in chosen)]

@@ -19,10 +19,13 @@ import numpy as np
 
 from ..common.errors import ArchiveError
 from ..common.locks import writer_lock
+from ..common.paths import below
 from ..db import manifest as mf
 from ..db.catalog import Catalog
 from ..db.folder import damaged_message
+from ..images.renditions import THUMBS, cached_thumbnails
 from ..db.roots import adopt_resolved_roots, drop_empty_gone_roots, gone_roots, missing_root_message
+from ..model.choice import checked, export_pays_off
 from ..model.pooling import PCAWhitening
 from ..search.exemplars import Exemplars
 from ..vectors.kinds import IndexPolicy
@@ -30,7 +33,7 @@ from ..vectors.reader import Reader
 from ..vectors.segments import StoreFileError
 from ..vectors.writer import LayerStore
 from .pipeline import Job, configure_threads, cores, run
-from .scan import below, diff_by_folder, normalize_roots, walk, walk_roots
+from .scan import diff_by_folder, normalize_roots, walk, walk_roots
 
 DEFAULT_FILE_TIMEOUT = 120.0  # seconds one file may take to read and decode before it is abandoned
 WRITE_ERRNOS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EPERM, errno.EDQUOT, errno.EFBIG}
@@ -131,10 +134,8 @@ class Indexer:
             checkpoint_every: int = 512, engine: str | None = None, workers: int | None = None,
             file_timeout: float | None = None, cluster=None) -> dict:
         """Index every image below these paths, incrementally; returns the run's counts (see Archive.add)."""
-        from ..model.onnx_engine import ENGINES
-
-        if engine is not None and engine not in ENGINES:
-            raise ArchiveError(f"unknown engine {engine!r}; choose one of: {', '.join(ENGINES)}")
+        if engine is not None:
+            checked(engine)
         try:
             roots = normalize_roots(paths)
         except FileNotFoundError as exc:
@@ -250,13 +251,13 @@ class Indexer:
         """What embeds the images of a run: the cached ONNX model without torch when the engine choice
         allows it (exported first, in a child process, when missing and worth it), else torch."""
         from ..model.onnx_embedder import OnnxEmbedder
-        from ..model.onnx_engine import AUTO_EXPORT_MIN_IMAGES, EngineError, cached_model_path, onnx_available
+        from ..model.onnx_engine import EngineError, cached_model_path, onnx_available
 
         if choice != "torch" and onnx_available():
             b = self.manifest["backbone"]
             path = cached_model_path(self.db / "engines", b, [l["node"] for l in self.manifest["layers"]],
                                      self.manifest["pooling"]["p"])
-            if not path.exists() and (choice == "onnx" or images >= AUTO_EXPORT_MIN_IMAGES):
+            if not path.exists() and export_pays_off(choice, images):
                 self._export_engine(required=choice == "onnx")
             if path.exists():
                 try:
@@ -339,7 +340,10 @@ class Indexer:
         for layer in self.layer_names:
             self.writer(layer).remove(gone)
         self.save_stores()
-        _drop_thumbnails(self.db, set(ids))
+        gone_ids = set(ids)
+        for p, image_id in cached_thumbnails(self.db / THUMBS):
+            if image_id in gone_ids:
+                p.unlink(missing_ok=True)
         return len(ids)
 
     def _maybe_learn_whitening(self) -> None:
@@ -363,11 +367,3 @@ class Indexer:
             entry["dim"] = pca.out_dim
         self.save_stores()
 
-
-def _drop_thumbnails(db: Path, ids: set[int]) -> None:
-    folder = db / "thumbs"
-    if folder.is_dir():
-        for p in folder.glob("*.jpg"):
-            head = p.name.split("-")[0]
-            if head.isdigit() and int(head) in ids:
-                p.unlink(missing_ok=True)

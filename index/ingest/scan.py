@@ -1,13 +1,14 @@
 """Walk the roots, stat every image file, and compare with the catalog -> a change set."""
 from __future__ import annotations
 
-import hashlib
 import os
 from collections import defaultdict
 from dataclasses import dataclass, field
 from itertools import groupby
 from typing import Callable, Iterator
 
+from ..common.files import sha256_file
+from ..common.paths import below, strictly_inside
 from ..images.decode import SUPPORTED_EXTENSIONS
 
 
@@ -30,14 +31,6 @@ class ChangeSet:
         }
 
 
-def sha256_file(path: str) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
 def normalize_roots(paths) -> list[str]:
     """Absolute paths with every link resolved: a file is catalogued once, at its real path, however
     it was reached (a link to an indexed folder given as a root adds nothing)."""
@@ -58,7 +51,7 @@ def walk_roots(roots: list[str]) -> list[str]:
     folders = [r for r in unique if r not in files]
 
     def inside(r: str) -> bool:  # strictly inside another folder root
-        return any(o != r and r.startswith(o.rstrip(os.sep) + os.sep) for o in folders)
+        return any(strictly_inside(r, o) for o in folders)
 
     return ([r for r in folders if not inside(r)]
             + sorted((r for r in files if not inside(r)), key=lambda r: (os.path.dirname(r), r)))
@@ -166,13 +159,6 @@ def diff_by_folder(files: Iterator[dict], rows_in_folder: Callable[[str], dict[s
     _match_moves(unknown, missing, cs, elsewhere)
     cs.gone_failures = [p for p in failures if p not in seen_failures]
     return cs
-
-
-def below(roots: list[str]) -> Callable[[str], bool]:
-    """A test for "this path is one of the roots or inside one of them" (prefixes built once)."""
-    exact = set(roots)
-    prefixes = tuple(r.rstrip(os.sep) + os.sep for r in roots)
-    return lambda path: path in exact or path.startswith(prefixes)
 
 
 def _compare(f: dict, row: dict | None, failures: dict[str, dict], cs: ChangeSet, unknown: list[dict]) -> None:

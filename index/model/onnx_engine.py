@@ -1,11 +1,11 @@
 """The ONNX Runtime engine: the backbone with GeM pooling inside the graph, run without torch.
 
-The exported graph (index.engines.export_onnx, which needs torch) takes the normalised input batch
+The exported graph (index.model.torch_engine.export_onnx, which needs torch) takes the normalised input batch
 and returns, for each chosen layer, the L2-normalised GeM descriptor and each channel's peak value and
 position, so only (N, C) arrays leave ONNX Runtime and the pooling runs on its threads. The file is
 cached in the database folder (`engines/`), named by a key of backbone, weights hash, input size,
 layer nodes and GeM exponent, and carries the layers' grids in its metadata. This module imports no
-torch: an indexer that finds the model cached never loads it (index.fast_embed).
+torch: an indexer that finds the model cached never loads it (index.model.onnx_embedder).
 """
 from __future__ import annotations
 
@@ -15,17 +15,15 @@ from pathlib import Path
 
 import numpy as np
 
-ENGINES = ("auto", "torch", "onnx")
+from ..common.errors import ArchiveError
+
 OPSET = 17
 EXPORT_FORMAT = 2  # 2: pooled outputs (descriptor, peak, position); bump when the exported graph changes
 CACHE_DIR = "engines"
 META_KEY = "kinscope"  # ONNX metadata entry: {"layers": [...], "grids": {layer: [h, w]}, "p": ...}
-# Below this many images an export (a few seconds, once per database) costs more than ONNX saves,
-# so "auto" stays on torch unless the exported model is already cached.
-AUTO_EXPORT_MIN_IMAGES = 200
 
 
-class EngineError(Exception):
+class EngineError(ArchiveError):
     """The engine asked for cannot be used (missing runtime, failed export, mismatching output)."""
 
 

@@ -9,7 +9,8 @@ from PIL import Image
 from torchvision.models.feature_extraction import create_feature_extractor
 
 from .backbones import Backbone
-from .torch_engine import TorchEngine, make_engine, pool  # noqa: F401  (pool: the torch pooling, used by tests)
+from .choice import make_engine
+from .torch_engine import TorchEngine
 from .layers import Layer
 from ..images.preprocess import fit_square, to_input
 
@@ -17,9 +18,9 @@ from ..images.preprocess import fit_square, to_input
 class Embedder:
     """Runs the backbone once per batch and pools every chosen layer.
 
-    Descriptors come from the chosen engine (torch or ONNX Runtime, see index.engines); feature maps
+    Descriptors come from the chosen engine (torch or ONNX Runtime, see index.model.choice); feature maps
     for explanations (`feature_maps`, `maps_of_image`) always come from torch, the reference.
-    (Indexing with a cached ONNX model needs none of this: see index.onnx_embed.)
+    (Indexing with a cached ONNX model needs none of this: see index.model.onnx_embedder.)
     """
 
     def __init__(self, backbone: Backbone, model: torch.nn.Module, layers: list[Layer], p: float = 3.0,
@@ -42,7 +43,7 @@ class Embedder:
     # --- engine -----------------------------------------------------------------------------
     def use_engine(self, choice: str = "auto", *, may_export: bool = False, images: int | None = None,
                    threads: int | None = None) -> str:
-        """Pick the engine for descriptors (see index.engines.make_engine); returns its name."""
+        """Pick the engine for descriptors (see index.model.choice.make_engine); returns its name."""
         threads = threads or self._threads or torch.get_num_threads()
         self._engine = make_engine(choice, self.extractor, [l.name for l in self.layers], [l.node for l in self.layers],
                                    backbone_manifest=self._backbone_manifest(), cache_dir=self.cache_dir,

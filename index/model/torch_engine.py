@@ -1,24 +1,22 @@
-"""Inference engines for the torch side: torch eager (the reference) and exporting the ONNX model.
+"""The torch side of the engines: torch eager (the reference) and exporting the ONNX model.
 
 torch (eager, through torchvision's feature extractor) is the reference. The ONNX engine
-(index.onnx_engine, torch-free) runs the same extractor exported with GeM pooling inside the graph:
-each chosen layer's descriptor and channel peaks are graph outputs. export_onnx checks the exported
-model against torch before it is cached. The indexer has it exported in a child process
-(index.model.child), so that it need never load torch.
+(index.model.onnx_engine, torch-free) runs the same extractor exported with GeM pooling inside the
+graph: each chosen layer's descriptor and channel peaks are graph outputs. export_onnx checks the
+exported model against torch before it is cached. Which engine runs is chosen in index.model.choice;
+the indexer has the model exported in a child process (index.model.child), never loading torch.
 """
 from __future__ import annotations
 
 import io
 import json
-import sys
 import warnings
 from pathlib import Path
 
 import numpy as np
 import torch
 
-from .onnx_engine import (AUTO_EXPORT_MIN_IMAGES, CACHE_DIR, ENGINES, EXPORT_FORMAT, META_KEY, OPSET,  # noqa: F401
-                          EngineError, OnnxEngine, cached_model_path, model_key, onnx_available, output_names)
+from .onnx_engine import EXPORT_FORMAT, META_KEY, OPSET, EngineError, OnnxEngine, output_names
 from .pooling import GEM_EPS, l2_normalize
 VERIFY_ATOL = 1e-5  # on L2-normalised descriptors of a random batch (the tests hold them to 1e-4)
 VERIFY_PEAK_ATOL = 1e-3  # on channel maxima (ReLU6 activations, 0..6)
@@ -144,47 +142,3 @@ def max_difference(a, b, input_size: int, batch: int = 2, seed: int = 0) -> tupl
     (da, pa), (db, pb) = a.embed(x), b.embed(x)
     return (max(float(np.abs(da[n] - db[n]).max()) for n in a.names),
             max(float(np.abs(pa[n][0] - pb[n][0]).max()) for n in a.names))
-
-
-def make_engine(choice: str, extractor: torch.nn.Module, names: list[str], nodes: list[str], *,
-                backbone_manifest: dict, cache_dir: Path | None, threads: int, may_export: bool,
-                images: int | None = None, p: float = 3.0):
-    """The engine for `choice` ("auto", "torch", "onnx").
-
-    "auto" takes ONNX Runtime (the faster on CPU, see docs/benchmarks.md) when its model is cached, or
-    when this caller may write the cache and has at least AUTO_EXPORT_MIN_IMAGES images to embed;
-    otherwise, or when ONNX Runtime is missing or its export fails, torch.
-    """
-    if choice not in ENGINES:
-        raise EngineError(f"unknown engine {choice!r}; choose one of: {', '.join(ENGINES)}")
-    torch_engine = TorchEngine(extractor, names, threads, p)
-    if choice == "torch":
-        return torch_engine
-    if not onnx_available():
-        if choice == "onnx":
-            raise EngineError("the onnx engine needs the onnxruntime package: pip install onnxruntime")
-        return torch_engine
-    path = cached_model_path(cache_dir, backbone_manifest, nodes, p) if cache_dir is not None else None
-    if path is not None and path.exists():
-        try:
-            return OnnxEngine(path, names, threads)
-        except EngineError:
-            if not may_export:
-                if choice == "onnx":
-                    raise
-                return torch_engine
-            path.unlink(missing_ok=True)  # a damaged cache file: export it again below
-    worth_it = images is None or images >= AUTO_EXPORT_MIN_IMAGES
-    if path is None or not may_export or (choice == "auto" and not worth_it):
-        if choice == "onnx":
-            raise EngineError("the onnx engine's model is not exported yet; index with --engine onnx first"
-                              if path is not None else "the onnx engine needs a cache folder")
-        return torch_engine
-    try:
-        export_onnx(extractor, names, backbone_manifest["input_size"], p, path)
-        return OnnxEngine(path, names, threads)
-    except Exception as exc:
-        if choice == "onnx":
-            raise EngineError(f"cannot export the model to ONNX: {exc}") from None
-        print(f"kinscope: ONNX export failed ({exc}); using torch", file=sys.stderr)
-        return torch_engine

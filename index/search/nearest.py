@@ -6,6 +6,7 @@ from typing import Callable
 
 import numpy as np
 
+from ..common.paths import prefix
 from ..db.catalog import Catalog
 from ..vectors.reader import VectorStore
 
@@ -51,10 +52,10 @@ def row_filter(folder: str | None = None, date_from: str | None = None, date_to:
                 date.fromisoformat(value[:10])
             except (TypeError, ValueError):
                 raise ValueError(f"{name} must be a real date YYYY-MM-DD, got {value!r}") from None
-    prefix = folder.rstrip("/") + "/" if folder else None
+    start = prefix(folder) if folder else None
 
     def accept(row: dict) -> bool:
-        if prefix and not (row["folder"] == folder.rstrip("/") or row["path"].startswith(prefix)):
+        if start and not row["path"].startswith(start):  # strictly below the folder
             return False
         day = item_date(row)
         return not ((date_from and day < date_from) or (date_to and day > date_to[:10]))

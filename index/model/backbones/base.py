@@ -1,10 +1,11 @@
 """What every backbone describes about itself: preprocessing, presets, weights' provenance."""
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Callable
+
+from ...common.files import sha256_file
 
 if TYPE_CHECKING:
     import torch
@@ -26,11 +27,7 @@ class Weights:
     missing_hint: str = ""  # what to tell the user when the file is absent
 
     def sha256(self) -> str:
-        digest = hashlib.sha256()
-        with open(self.path, "rb") as fh:
-            for chunk in iter(lambda: fh.read(1 << 20), b""):
-                digest.update(chunk)
-        return digest.hexdigest()
+        return sha256_file(self.path)
 
 
 @dataclass(frozen=True)
