@@ -16,20 +16,28 @@ from PIL import Image
 from .common.errors import ArchiveError
 from .db import manifest as mf
 from .db.catalog import Catalog
-from .db.folder import CatalogProblem, open_catalog
+from .db.folder import CatalogProblem, open_catalog, sqlite_message
 from .images import renditions as media
 from .images.decode import DecodeError, open_image
+from .images.decode_memory import quiet_pillow_warnings
+from .images.preprocess import decode_side, fit_square
+from .images.renditions import DISPLAY_SIDE
+from .ingest.cluster import connect as connect_cluster
 from .ingest.indexer import Indexer
 from .ingest.pipeline import configure_threads, cores
 from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone
+from .model.choice import ENGINES
 from .model.pooling import PCAWhitening
 from .model.settings import available_layers, backbone_of, check_settings, layer_specs, new_manifest_apart
 from .search.exemplars import Exemplars
-from .search.nearest import nearest, row_filter
-from .vectors.kinds import bytes_per_vector_of
+from .search.nearest import item_date, nearest, row_filter
+from .vectors.kinds import bytes_per_vector_of, type_name
 from .vectors.reader import Reader, VectorStore
 
-__all__ = ["Archive", "ArchiveError"]
+# Archive, and what else the CLI and web/ may use: they import nothing from index but this module.
+__all__ = ["Archive", "ArchiveError", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "NAMES",
+           "connect_cluster", "decode_side", "fit_square", "item_date", "open_image", "quiet_pillow_warnings",
+           "sqlite_message", "type_name"]
 
 
 class Archive:
@@ -50,18 +58,9 @@ class Archive:
 
     # --- opening ----------------------------------------------------------------------------
     @classmethod
-    def open(
-        cls,
-        db: str | os.PathLike,
-        *,
-        create: bool = False,
-        backbone: str | None = None,
-        layers: list[str] | None = None,
-        gem_p: float | None = None,
-        whiten: bool | None = None,
-        weights: str | os.PathLike | None = None,
-        lenient: bool = False,
-    ) -> "Archive":
+    def open(cls, db: str | os.PathLike, *, create: bool = False, backbone: str | None = None,
+             layers: list[str] | None = None, gem_p: float | None = None, whiten: bool | None = None,
+             weights: str | os.PathLike | None = None, lenient: bool = False) -> "Archive":
         """Open the archive in folder `db`; with create=True, make it if absent.
 
         Settings given for an existing archive must match what it was built with. A missing or
@@ -183,26 +182,7 @@ class Archive:
         """A query as an RGB image: an id (its file), a path, bytes or a PIL image; cropped to `box`."""
         if isinstance(query, (int, np.integer)):
             query = self.item(int(query))["path"]
-        if isinstance(query, Image.Image):
-            image = query.convert("RGB")
-        else:
-            if isinstance(query, (str, os.PathLike)) and not os.path.isfile(query):
-                raise ArchiveError(f"query image not found: {query}")
-            try:
-                # Decoded exactly as at indexing time, so a file's query descriptor equals its stored one;
-                # a region needs the full resolution.
-                from .ingest.decode_task import decode_side
-
-                image = open_image(query, min_side=decode_side(self.backbone.input_size) if box is None else None).image
-            except DecodeError as exc:
-                what = "the uploaded file" if isinstance(query, (bytes, bytearray)) else query
-                raise ArchiveError(f"cannot use {what} as a query: {exc.reason}") from None
-        if box is not None:
-            try:
-                image = media.crop(image, box)
-            except (ValueError, TypeError) as exc:
-                raise ArchiveError(f"bad region box {box!r}: {exc}") from None
-        return image
+        return media.query_image(query, decode_side(self.manifest["backbone"]["input_size"]), box)
 
     def search(self, query, *, layer: str | None = None, k: int = 10, box=None, offset: int = 0,
                folder: str | None = None, date_from: str | None = None, date_to: str | None = None) -> dict:
@@ -311,9 +291,31 @@ class Archive:
         from .duplicates import groups as dup
 
         try:
-            return dup.from_archive(self, layer=layer, threshold=threshold, normalised=normalised, progress=progress)
+            return dup.from_archive(self.catalog, self.reader, layer=layer, threshold=threshold,
+                                    normalised=normalised, progress=progress)
         except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
+
+    def quarantine(self, doc: dict, dest: str | os.PathLike, *, apply: bool = False) -> dict:
+        """Move the non-keepers of `doc` (from `duplicates`) into `dest`, outside every indexed root,
+        with a manifest to undo it; only the plan unless apply=True. Never deletes."""
+        from .duplicates.quarantine import move
+
+        return move(doc, dest, self.catalog.known_roots(), db=str(self.db), apply=apply)
+
+    @staticmethod
+    def restore(manifest: str | os.PathLike, *, apply: bool = False) -> dict:
+        """Put the files a quarantine manifest lists back where they were; never overwrites."""
+        from .duplicates.quarantine import restore
+
+        return restore(manifest, apply=apply)
+
+    @staticmethod
+    def write_review_page(doc: dict, path: str | os.PathLike) -> None:
+        """A static HTML page of the groups in `doc`, thumbnails embedded (OSError if it cannot be written)."""
+        from .duplicates.review_page import write
+
+        write(doc, path)
 
     # --- roots ------------------------------------------------------------------------------
     def roots(self) -> list[dict]:

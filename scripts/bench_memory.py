@@ -62,10 +62,11 @@ def prefill(db: Path, files: list[tuple[str, int, float]], layers: list[str] | N
     Each layer's index is built in this process as the indexer would hold it at this size (flat while
     small, IVF-SQ8 with lists_for(N) lists above), written as one FAISS file, then laid out as the
     indexer's segments by the same conversion that upgrades an archive from before segments."""
-    from index.vectors import kinds as vi
     from index.api import Archive
-    from tests.synthetic import Descriptors
+    from index.db.manifest import layer_entry
+    from index.vectors import kinds as vi
     from index.vectors.kinds import FLAT, IVF, IndexPolicy
+    from tests.synthetic import Descriptors
 
     archive = Archive.open(db, create=True, **({"layers": layers} if layers else {}))
     run_id = archive.catalog.start_run(["prefill"])
@@ -81,7 +82,7 @@ def prefill(db: Path, files: list[tuple[str, int, float]], layers: list[str] | N
     policy = IndexPolicy.from_dict(archive.manifest.get("vector_index"))
     kinds = {}
     for k, layer in enumerate(archive.layer_names):
-        dim = archive._layer(layer)["dim"]
+        dim = layer_entry(archive.manifest, layer)["dim"]
         x = np.zeros((len(ids), dim), np.float32)
         for start in range(0, len(ids), 100_000):  # chunks of clustered descriptors, each its own clusters
             part = slice(start, start + 100_000)
@@ -99,7 +100,7 @@ def prefill(db: Path, files: list[tuple[str, int, float]], layers: list[str] | N
         for start in range(0, len(ids), 100_000):
             index.add_with_ids(x[start:start + 100_000], ids[start:start + 100_000])
         del x
-        faiss.write_index(index, str(db / archive._layer(layer)["file"]))
+        faiss.write_index(index, str(db / layer_entry(archive.manifest, layer)["file"]))
         kinds[layer] = vi.type_name(vi.describe(index))
         del index
         archive.indexer.writer(layer)  # laid out as segments (codec + segment files)
@@ -115,11 +116,12 @@ def grow(work: Path, n: int, layers: list[str] | None, batch: int = 512, checkpo
     from PIL import Image
 
     from index.api import Archive
+    from index.db.manifest import layer_entry
     from index.ingest.pipeline import peak_rss_self
     from tests.synthetic import Descriptors
 
     archive = Archive.open(work / "db", create=True, **({"layers": layers} if layers else {}))
-    dims = {layer: archive._layer(layer)["dim"] for layer in archive.layer_names}
+    dims = {layer: layer_entry(archive.manifest, layer)["dim"] for layer in archive.layer_names}
     # What the indexer holds besides its stores: the ONNX model (exported in a child process, as a
     # first run does), run once on a batch of 8 so that its working memory is in the figure too.
     embedder = archive.indexer.embedder_for_run("onnx", n)

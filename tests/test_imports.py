@@ -30,22 +30,6 @@ ALLOWED = {
 }
 # What web/ may import from index.
 WEB_ALLOWED = {"index.api", "index.common.errors"}
-# Known breaches of the rules above ("a -> b": an import, ignored by every check; "path: N lines"),
-# taken out one by one as the restructuring goes on; each must still be true (no stale entry).
-KNOWN: set[str] = {
-    "index.cli.commands -> index.db.folder",
-    "index.cli.commands -> index.images.decode_memory",
-    "index.cli.commands -> index.ingest.cluster",
-    "index.cli.commands -> index.model.backbones",
-    "index.cli.commands -> index.vectors.kinds",
-    "index.cli.duplicates -> index.duplicates.quarantine",
-    "index.cli.duplicates -> index.duplicates.review_page",
-    "web.api -> index.images.decode",
-    "web.api -> index.search.nearest",
-    "web.uploads -> index.images.decode",
-    "web.uploads -> index.images.preprocess",
-    "web.uploads -> index.images.renditions",
-}
 
 
 def module_files(package: Path, prefix: str) -> dict[str, Path]:
@@ -131,16 +115,8 @@ def room_breaches(edges: dict[str, set[str]]) -> set[str]:
 
 
 def whole_graph() -> dict[str, set[str]]:
-    """index/ and web/, without the KNOWN edges."""
-    edges = graph({"index": ROOT / "index", "web": ROOT / "web"})
-    return {s: {t for t in ts if f"{s} -> {t}" not in KNOWN} for s, ts in edges.items()}
-
-
-def test_known_breaches_are_still_breaches():
-    edges = graph({"index": ROOT / "index", "web": ROOT / "web"})
-    present = {f"{s} -> {t}" for s, ts in edges.items() for t in ts} | set(long_modules())
-    stale = KNOWN - present
-    assert not stale, f"fixed: take them out of KNOWN in tests/test_imports.py: {sorted(stale)}"
+    """index/ and web/."""
+    return graph({"index": ROOT / "index", "web": ROOT / "web"})
 
 
 def test_no_import_circles():
@@ -169,8 +145,8 @@ def long_modules() -> list[str]:
 
 
 def test_no_module_is_over_the_line_limit():
-    long = set(long_modules()) - KNOWN
-    assert not long, f"modules over {MAX_LINES} lines: {sorted(long)}"
+    long = long_modules()
+    assert not long, f"modules over {MAX_LINES} lines: {long}"
 
 
 def test_the_checks_catch_what_they_are_for(tmp_path):

@@ -20,9 +20,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from index.api import ArchiveError
-from index.images.decode import DecodeError
-from index.images.renditions import DISPLAY_SIDE
+from index.api import DISPLAY_SIDE, ArchiveError, DecodeError
 from web import create_app
 from web.archive_access import Holder
 from web.uploads import KeptQuery, keep

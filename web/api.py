@@ -6,9 +6,7 @@ from pathlib import Path
 
 from flask import Blueprint, Response, jsonify, request, url_for
 
-from index.api import ArchiveError
-from index.images.decode import DecodeError
-from index.search.nearest import item_date
+from index.api import ArchiveError, DecodeError, item_date
 
 from . import params
 from .archive_access import holder

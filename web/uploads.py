@@ -15,9 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 from PIL import Image
 
-from index.images.decode import open_image
-from index.images.renditions import DISPLAY_SIDE
-from index.images.preprocess import fit_square
+from index.api import DISPLAY_SIDE, fit_square, open_image
 
 DISPLAY_QUALITY = 90
 

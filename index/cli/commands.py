@@ -8,11 +8,8 @@ import sys
 
 import click
 
-from ..api import Archive, ArchiveError
-from ..db.folder import sqlite_message
-from ..images.decode_memory import quiet_pillow_warnings
-from ..model.backbones import DEFAULT_BACKBONE, NAMES
-from ..vectors.kinds import type_name
+from ..api import (DEFAULT_BACKBONE, ENGINES, NAMES, Archive, ArchiveError, connect_cluster, quiet_pillow_warnings,
+                   sqlite_message, type_name)
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
 
@@ -26,10 +23,8 @@ def _cluster(value: str | None):
     """local:N -> a new local Dask cluster of N processes (its client); an address passes through."""
     if not value or not value.startswith("local:"):
         return value
-    from ..ingest.cluster import connect
-
     try:
-        return connect(workers=int(value.split(":", 1)[1]))
+        return connect_cluster(workers=int(value.split(":", 1)[1]))
     except ValueError:
         _fail(click.UsageError("--cluster local:N takes a number of worker processes"))
 
@@ -81,7 +76,7 @@ def main() -> None:
 @click.option("--whiten/--no-whiten", default=None, help="Learn PCA whitening once the archive holds 1000 images.")
 @click.option("--batch-size", default=8, show_default=True, type=click.IntRange(1, 256),
               help="Images per forward pass (larger batches were no faster on CPU and take more memory).")
-@click.option("--engine", type=click.Choice(["auto", "torch", "onnx"]),
+@click.option("--engine", type=click.Choice(ENGINES),
               help="Inference engine: auto (default: ONNX Runtime when its one-off export pays off), torch or onnx. "
               "A preference only: descriptors of both are interchangeable.")
 @click.option("--workers", type=click.IntRange(1, 64), help="Decode worker processes (default: one per core).")

@@ -1,4 +1,4 @@
-"""`kinscope duplicates` and `kinscope restore`: thin wrappers over Archive.duplicates and index.quarantine."""
+"""`kinscope duplicates` and `kinscope restore`: thin wrappers over Archive.duplicates, .quarantine and .restore."""
 from __future__ import annotations
 
 import csv
@@ -9,7 +9,6 @@ import sys
 import click
 
 from ..api import Archive, ArchiveError
-from ..duplicates.quarantine import QuarantineError, indexed_roots, move, restore
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
 CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
@@ -80,22 +79,16 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
     try:
         with Archive.open(db) as archive:
             doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet)
-            roots = indexed_roots(archive) if move_to else []
+            if report_path:  # before any move, so the thumbnails come from where the files are now
+                try:
+                    archive.write_review_page(doc, report_path)
+                except OSError as exc:
+                    _fail(f"cannot write the report {report_path}: {exc.strerror or exc}")
+            if move_to:
+                doc["quarantine"] = archive.quarantine(doc, move_to, apply=apply)
     except ArchiveError as exc:
         _fail(exc)
-    if report_path:  # before any move, so the thumbnails come from where the files are now
-        from ..duplicates.review_page import write
-
-        try:
-            write(doc, report_path)
-        except OSError as exc:
-            _fail(f"cannot write the report {report_path}: {exc.strerror or exc}")
     on_stdout = output is None
-    if move_to:
-        try:
-            doc["quarantine"] = move(doc, move_to, roots, db=str(db), apply=apply)
-        except QuarantineError as exc:
-            _fail(exc)
     text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else to_csv(doc)
     if on_stdout:
         click.echo(text, nl=False)
@@ -119,8 +112,8 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
 def restore_cmd(manifest, apply, as_json):
     """Put the files listed in a quarantine MANIFEST back where they were; never overwrites."""
     try:
-        report = restore(manifest, apply=apply)
-    except QuarantineError as exc:
+        report = Archive.restore(manifest, apply=apply)
+    except ArchiveError as exc:
         _fail(exc)
     if as_json:
         click.echo(json.dumps(report, indent=2))

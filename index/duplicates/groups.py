@@ -1,7 +1,7 @@
 """Near-duplicate detection: exact copies by content hash, near copies by descriptor similarity.
 
 Plain functions over numpy arrays (shapes checked), plus `from_archive`, which pulls ids, descriptors
-and catalog rows out of an Archive. Nothing here reads, moves or deletes image files.
+and catalog rows out of an archive's catalog and stores. Nothing here reads, moves or deletes image files.
 The rules (grouping, keeper, normalisation) and the calibration are explained in docs/duplicates.md.
 """
 from __future__ import annotations
@@ -382,7 +382,7 @@ def _group(kind, keep, centre, positions, ids, vectors, rows, bg) -> dict:
             "members": members, "pairs": pairs}
 
 
-# --- the Archive side ------------------------------------------------------------------------------------
+# --- an archive's side ------------------------------------------------------------------------------------
 ROW_COLUMNS = ("id", "path", "width", "height", "mtime", "size", "sha256")
 
 
@@ -401,13 +401,13 @@ def all_vectors(store) -> tuple[np.ndarray, np.ndarray]:
     return ids, store.reconstruct(ids)
 
 
-def resolve_settings(archive, layer: str | None, threshold: float | None,
+def resolve_settings(manifest: dict, layer: str | None, threshold: float | None,
                      normalised: bool = True) -> tuple[str, float, float | None]:
     """(layer, threshold, cosine floor) to use; refuses a default where the calibration does not hold."""
-    names = archive.layer_names
+    names = [l["name"] for l in manifest["layers"]]
     if layer is None:
-        layer = next((name for name in (DEFAULT_LAYER, "parts") if name in names), archive.manifest["default_layer"])
-    entry = next((l for l in archive.manifest["layers"] if layer in (l["name"], l["node"])), None)
+        layer = next((name for name in (DEFAULT_LAYER, "parts") if name in names), manifest["default_layer"])
+    entry = next((l for l in manifest["layers"] if layer in (l["name"], l["node"])), None)
     if entry is None:
         raise DuplicatesError(f"this archive has no layer {layer!r}; it has: {', '.join(names)}")
     layer = entry["name"]
@@ -417,7 +417,7 @@ def resolve_settings(archive, layer: str | None, threshold: float | None,
     if not normalised:
         raise DuplicatesError("the calibrated thresholds are for the normalised score; with raw cosine "
                               "similarity give --threshold")
-    m = archive.manifest
+    m = manifest
     why = []
     if layer not in DEFAULT_THRESHOLDS:
         why.append(f"layer {layer!r} (calibrated: {', '.join(DEFAULT_THRESHOLDS)})")
@@ -434,17 +434,18 @@ def resolve_settings(archive, layer: str | None, threshold: float | None,
     return layer, DEFAULT_THRESHOLDS[layer], floor
 
 
-def from_archive(archive, *, layer: str | None = None, threshold: float | None = None,
+def from_archive(catalog, reader, *, layer: str | None = None, threshold: float | None = None,
                  normalised: bool = True, progress: bool = False) -> dict:
-    """Run the job over every embedded item of an Archive on one layer."""
-    layer, threshold, floor = resolve_settings(archive, layer, threshold, normalised)
-    stored_ids, vectors = all_vectors(archive.store(layer))
-    rows = {r["id"]: r for r in archive.catalog.db.query(
+    """Run the job over every embedded item of an archive on one layer: its catalog, and its stores as
+    `reader` (index.vectors.reader.Reader) reads them."""
+    layer, threshold, floor = resolve_settings(reader.manifest, layer, threshold, normalised)
+    stored_ids, vectors = all_vectors(reader.store(layer))
+    rows = {r["id"]: r for r in catalog.db.query(
         f"select {', '.join(ROW_COLUMNS)} from images where status = 'ok'")}
     keep = np.array([int(i) in rows for i in stored_ids], bool)  # skip ids the catalog has not committed
     order = np.flatnonzero(keep)[np.argsort(stored_ids[keep], kind="stable")]  # catalog order: deterministic
     ids, vectors = stored_ids[order], vectors[order]
     doc = find(ids, vectors, [rows[int(i)] for i in ids], threshold=threshold, normalised=normalised,
                min_cosine=floor, progress=progress, layer=layer)
-    doc["db"] = str(archive.db)
+    doc["db"] = str(reader.db)
     return doc

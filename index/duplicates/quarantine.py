@@ -13,13 +13,14 @@ import os
 from datetime import datetime, timezone
 from pathlib import Path
 
+from ..common.errors import ArchiveError
 from ..common.files import atomic_write, sha256_file
 from ..common.paths import is_inside
 
 MANIFEST_FORMAT = "kinscope-quarantine/1"
 
 
-class QuarantineError(ValueError):
+class QuarantineError(ArchiveError, ValueError):
     """A request that cannot be carried out safely; nothing has been moved."""
 
 
@@ -29,17 +30,6 @@ def _device(path: str) -> int:
     while not os.path.exists(p):
         p = os.path.dirname(p)
     return os.stat(p).st_dev
-
-
-def indexed_roots(archive) -> list[str]:
-    """Every folder (or file) any index run of this archive was given."""
-    roots = set()
-    for row in archive.catalog.db.query("select roots from runs"):
-        try:
-            roots.update(json.loads(row["roots"] or "[]"))
-        except ValueError:
-            continue
-    return sorted(roots)
 
 
 def leaving(doc: dict) -> list[dict]:

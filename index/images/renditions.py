@@ -15,9 +15,10 @@ from typing import Iterator
 
 from PIL import Image
 
-from .decode import open_image
+from ..common.errors import ArchiveError
 from ..common.files import atomic_write
 from ..common.paths import below
+from .decode import DecodeError, open_image
 
 THUMB_SIZES = (128, 256, 512)
 THUMBS = "thumbs"  # the thumbnail cache, in the database folder
@@ -94,6 +95,28 @@ def crop(image: Image.Image, box: list[float] | tuple[float, ...]) -> Image.Imag
     left, top = int(x0 * w), int(y0 * h)
     right, bottom = max(left + 1, int(round(x1 * w))), max(top + 1, int(round(y1 * h)))
     return image.crop((left, top, right, bottom))
+
+
+def query_image(query, min_side: int, box=None) -> Image.Image:
+    """A query (a path, bytes or a PIL image) as an RGB image, cropped to `box` (fractions). A file is
+    decoded at `min_side` as at indexing time (index.images.preprocess.decode_side), so that its query
+    descriptor equals its stored one; a region needs the full resolution."""
+    if isinstance(query, Image.Image):
+        image = query.convert("RGB")
+    else:
+        if isinstance(query, (str, os.PathLike)) and not os.path.isfile(query):
+            raise ArchiveError(f"query image not found: {query}")
+        try:
+            image = open_image(query, min_side=min_side if box is None else None).image
+        except DecodeError as exc:
+            what = "the uploaded file" if isinstance(query, (bytes, bytearray)) else query
+            raise ArchiveError(f"cannot use {what} as a query: {exc.reason}") from None
+    if box is not None:
+        try:
+            image = crop(image, box)
+        except (ValueError, TypeError) as exc:
+            raise ArchiveError(f"bad region box {box!r}: {exc}") from None
+    return image
 
 
 def patch(row: dict, box: list[float], size: int = 96, source=None) -> bytes:

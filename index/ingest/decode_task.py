@@ -11,14 +11,7 @@ import threading
 import warnings
 
 from ..images.decode import DecodeError, open_image
-from ..images.preprocess import fit_square
-
-
-def decode_side(size: int) -> int:
-    """The smallest shorter side to decode at for a network input of `size`: half as much again, so
-    that a real anti-aliased resize always follows the reduced decode (a DCT-scaled decode straight to
-    the input size moved late-layer descriptors by a cosine distance of about 0.02)."""
-    return size + size // 2
+from ..images.preprocess import decode_side, fit_square
 
 
 def read_file(path: str, size: int) -> dict:
