@@ -36,8 +36,8 @@ from .vectors.reader import Reader, VectorStore
 
 # Archive, and what else the CLI and web/ may use: they import nothing from index but this module.
 __all__ = ["Archive", "ArchiveError", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "NAMES",
-           "connect_cluster", "decode_side", "fit_square", "item_date", "open_image", "quiet_pillow_warnings",
-           "sqlite_message", "type_name"]
+           "connect_cluster", "fit_square", "item_date", "open_image", "quiet_pillow_warnings", "sqlite_message",
+           "type_name"]
 
 
 class Archive:
@@ -79,7 +79,7 @@ class Archive:
                 raise ArchiveError(f"{db} is not empty and holds no {mf.FILE}; choose a new or empty folder for --db")
             manifest = new_manifest_apart(db, backbone or DEFAULT_BACKBONE, layers, gem_p, whiten, weights)
             archive = cls(db, manifest)
-            archive.catalog.set_layers([{k: l[k] for k in ("name", "node", "channels", "stride", "dim")} for l in manifest["layers"]])
+            archive.catalog.set_layers([{k: l[k] for k in mf.LAYER_COLUMNS} for l in manifest["layers"]])
             mf.write(db, manifest)
             return archive
         check_settings(db, manifest, backbone=backbone, layers=layers, gem_p=gem_p, whiten=whiten, weights=weights)
@@ -162,7 +162,7 @@ class Archive:
         return self.indexer.reconcile()
 
     # --- searching --------------------------------------------------------------------------
-    def describe(self, query, layer: str | None = None, box=None) -> np.ndarray:
+    def query_vector(self, query, layer: str | None = None, box=None) -> np.ndarray:
         """The descriptor of a query: a catalog id, a file path, image bytes or a PIL image.
 
         With `box` ([x0, y0, x1, y1] as fractions of the image) only that region is described.
@@ -173,7 +173,8 @@ class Archive:
             try:
                 return self.store(name).reconstruct(np.array([int(query)]))[0]
             except RuntimeError:  # committed in the catalog but not in this store: `kinscope index` again
-                raise ArchiveError(f"item {int(query)} has no {name} descriptor yet; run kinscope index again") from None
+                raise ArchiveError(f"item {int(query)} has no {name} descriptor yet; "
+                                   "run kinscope index again") from None
         vector = self.embedder.embed_images([self.query_image(query, box)])[name]
         w = self.whitening(name)
         return (w.transform(vector) if w else vector)[0]
@@ -191,15 +192,15 @@ class Archive:
         `folder` keeps items below that folder; `date_from`/`date_to` ('YYYY-MM-DD') filter on the
         capture date, else the file date; `offset` pages through the ranking.
         """
-        for label, value in (("k", k), ("offset", offset)):
-            if not isinstance(value, (int, np.integer)) or value < (1 if label == "k" else 0):
-                raise ArchiveError(f"{label} must be a {'positive' if label == 'k' else 'non-negative'} whole number, got {value!r}")
+        for label, value, least, what in (("k", k, 1, "positive"), ("offset", offset, 0, "non-negative")):
+            if not isinstance(value, (int, np.integer)) or value < least:
+                raise ArchiveError(f"{label} must be a {what} whole number, got {value!r}")
         name = self._layer(layer)["name"]
         try:
             accept = row_filter(folder, date_from, date_to)
         except ValueError as exc:
             raise ArchiveError(str(exc)) from None
-        vector = self.describe(query, name, box)
+        vector = self.query_vector(query, name, box)
         by_id = isinstance(query, (int, np.integer))
         exclude = int(query) if by_id and box is None else None
         results, more = nearest(self.store(name), self.catalog, vector, int(k), exclude=exclude, offset=int(offset),
@@ -356,7 +357,7 @@ class Archive:
         layers = []
         for l in m["layers"]:
             index = self._index_info(l["name"])
-            layers.append({**{k: l[k] for k in ("name", "node", "channels", "stride", "dim")},
+            layers.append({**{k: l[k] for k in mf.LAYER_COLUMNS},
                            "vectors": index["vectors"], "hint": PRESET_HINTS.get(l["name"], ""), "index": index,
                            "bytes_per_vector": bytes_per_vector_of(index)})
         return {
@@ -375,7 +376,7 @@ class Archive:
         recorded = self.manifest.get("indexes", {}).get(layer)
         if recorded and "stores" in self.manifest:
             return recorded
-        return self.store(layer).describe()  # an archive from before segments, or never checkpointed
+        return self.store(layer).index_info()  # an archive from before segments, or never checkpointed
 
     @staticmethod
     def available_layers(backbone: str = DEFAULT_BACKBONE, weights: str | None = None) -> dict:

@@ -101,7 +101,7 @@ def prefill(db: Path, files: list[tuple[str, int, float]], layers: list[str] | N
             index.add_with_ids(x[start:start + 100_000], ids[start:start + 100_000])
         del x
         faiss.write_index(index, str(db / layer_entry(archive.manifest, layer)["file"]))
-        kinds[layer] = vi.type_name(vi.describe(index))
+        kinds[layer] = vi.type_name(vi.index_info(index))
         del index
         archive.indexer.writer(layer)  # laid out as segments (codec + segment files)
     archive.indexer.save_stores()
@@ -145,7 +145,7 @@ def grow(work: Path, n: int, layers: list[str] | None, batch: int = 512, checkpo
                 archive.indexer.save_stores()
         del chunk
     archive.indexer.save_stores()
-    info = {layer: archive.indexer.writer(layer).describe() for layer in archive.layer_names}
+    info = {layer: archive.indexer.writer(layer).index_info() for layer in archive.layer_names}
     return {"n": n, "seconds": time.perf_counter() - t, "peak_rss": peak_rss_self(), "start_rss": start_rss,
             "torch": "torch" in sys.modules,
             "slowest_batch": slowest, "indexes": info,

@@ -5,7 +5,7 @@
 The descriptors come from tests.synthetic.Descriptors (clusters, power-law spectrum, calibrated on the
 demo archive's `parts` descriptors), at the default search layer's size (672). Queries are new points
 from the same clusters, not stored vectors. For each size and each index type kinscope offers (flat;
-IVF-SQ8 grown as the indexer grows it (index.layer_store: flat first, IVF-SQ8 past the flat limit,
+IVF-SQ8 grown as the indexer grows it (index.vectors.writer: flat first, IVF-SQ8 past the flat limit,
 retrained with twice the lists after each fourfold growth, nprobe calibrated at each rebuild on 500 stored
 vectors as queries for recall@10 of 0.95 + 0.01 margin), shown with half and twice that nprobe; the same
 behind PCA to 256 dimensions), and IVF-PQ fast-scan with an exact re-rank, which is not offered (see the
@@ -73,7 +73,7 @@ def file_bytes(index: faiss.Index) -> int:
 
 
 def grow(db: Path, vectors: np.ndarray, ids: np.ndarray, policy: IndexPolicy) -> tuple[float, dict, int]:
-    """Fill a layer's store as the indexer does (index.layer_store: flat, then IVF-SQ8 retrained as it
+    """Fill a layer's store as the indexer does (index.vectors.writer: flat, then IVF-SQ8 retrained as it
     grows), 10 000 vectors at a time with a checkpoint every 50 000; seconds, final state, bytes on disk."""
     writer = LayerStore(db, "bench", vectors.shape[1], None, policy=policy)
     t = time.perf_counter()
@@ -143,7 +143,7 @@ def main() -> None:
                 before = rss()
                 store = VectorStore(args.dim, assemble(Path(tmp), state), measured=state["measured"])
                 grown = rss() - before
-            info = store.describe()
+            info = store.index_info()
             ivf = faiss.extract_index_ivf(store.index)
             print(f"{label}: nlist {info['nlist']}, nprobe {info['nprobe']} (calibrated when the store held "
                   f"{info['built_for']:,}: recall@10 {info['recall_at_10']:.3f} on {info['recall_queries']} stored "

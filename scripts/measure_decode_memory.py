@@ -1,10 +1,10 @@
-"""Peak memory of one file read as a decode worker reads it (index.reader.read_file: hash, decode at
+"""Peak memory of one file read as a decode worker reads it (index.ingest.decode_task.read_file: hash, decode at
 reduced size, resize), in a fresh process: VmHWM from /proc, less its value after the imports.
 
     .venv/bin/python scripts/measure_decode_memory.py                    # this tree
     .venv/bin/python scripts/measure_decode_memory.py --tree /path/to/other/checkout   # side by side
 
-For each test image: the decoder's own estimate (index.decode_memory.estimate, when the tree has it)
+For each test image: the decoder's own estimate (index.images.decode_memory.estimate, when the tree has it)
 and the measured growth of the process's peak resident memory over its peak after the imports.
 Images: a 16-bit 9950 x 9950 grey PNG (a ramp, 0.2 MB on disk, just under the
 100-million-pixel limit), an 8-bit grey PNG and an RGBA PNG of the same size. Takes about a minute.
@@ -31,11 +31,17 @@ def hwm():
             return int(line.split()[1]) * 1024
 import numpy
 from PIL import Image
-from index.ingest.decode_task import read_file
+try:
+    from index.ingest.decode_task import read_file
+except ImportError:  # a tree from before index/ had rooms
+    from index.reader import read_file
 try:
     from index.images.decode_memory import estimate
 except ImportError:
-    estimate = None
+    try:
+        from index.decode_memory import estimate
+    except ImportError:
+        estimate = None
 path, min_side = sys.argv[1], int(sys.argv[2])
 est = None
 if estimate is not None:

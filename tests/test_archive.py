@@ -58,7 +58,7 @@ def test_scores_are_cosine_similarities_of_the_stored_descriptors(sample_archive
     # Reference: numpy dot product of the two L2-normalised descriptors (cosine similarity).
     archive, folder = sample_archive
     result = archive.search(str(folder / "rocket.png"), layer="texture", k=5)
-    q = archive.describe(str(folder / "rocket.png"), "texture")
+    q = archive.query_vector(str(folder / "rocket.png"), "texture")
     for r in result["results"]:
         d = archive.store("texture").reconstruct(np.array([r["id"]]))[0]
         assert r["score"] == pytest.approx(float(q @ d), abs=1e-5)
@@ -90,13 +90,13 @@ def test_the_eight_exif_orientations_give_the_descriptor_of_the_upright_pixels(s
     archive, _ = sample_archive
     upright = sample_images["astronaut"].resize((256, 192))
     upright.save(tmp_path / "upright.png")
-    reference = archive.describe(str(tmp_path / "upright.png"), "parts")
+    reference = archive.query_vector(str(tmp_path / "upright.png"), "parts")
     for value, store in ORIENTATION_STORE.items():
         exif = Image.Exif()
         exif[0x0112] = value
         path = tmp_path / f"orientation-{value}.png"
         store(upright).save(path, exif=exif.tobytes())
-        got = archive.describe(str(path), "parts")
+        got = archive.query_vector(str(path), "parts")
         assert float(got @ reference) == pytest.approx(1.0, abs=1e-5), f"orientation {value}"
 
 

@@ -1,4 +1,4 @@
-"""Tests for index.decode: every image is generated here, in tmp_path or memory.
+"""Tests for index.images.decode and index.images.metadata: every image is generated here, in tmp_path or memory.
 
 Sources are named beside the checks.  "from memory" marks values recalled
 rather than read from the document at hand; "common practice" marks trade

@@ -63,7 +63,7 @@ def test_every_file_comes_back_once_with_pixels_or_a_reason(tmp_path):
     assert results[paths[-1]]["error"]
     for p in paths[:-1]:
         assert results[p]["pixels"].shape == (64, 64, 3) and results[p]["pixels"].dtype == np.uint8
-        # Same pixels as reading in this process (index.reader is the one code path).
+        # Same pixels as reading in this process (index.ingest.decode_task is the one code path).
         assert np.array_equal(results[p]["pixels"], read_file(p, 64)["pixels"])
 
 

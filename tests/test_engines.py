@@ -22,7 +22,7 @@ def embedders(lite0, tmp_path_factory):
 
 
 def test_onnx_descriptors_equal_torch_descriptors(embedders, sample_images):
-    # Reference: torch eager through torchvision's feature extractor (index.engines, the reference engine).
+    # Reference: torch eager through torchvision's feature extractor (index.model.torch_engine, the reference engine).
     reference, onnx, _ = embedders
     batch = np.stack([reference.preprocess(im) for im in sample_images.values()])
     want, want_peaks = reference.embed_with_peaks(batch)
@@ -114,7 +114,7 @@ def test_a_reader_never_exports_the_model(tmp_path, sample_images):
 
 @pytest.mark.parametrize("p", [1.0, 3.0, 4.5])
 def test_pooling_equals_the_reference_gem_and_peaks(p):
-    # Reference: index.pooling.gem (GeM as defined by Radenovic, Tolias and Chum) and torch's max.
+    # Reference: index.model.pooling.gem (GeM as defined by Radenovic, Tolias and Chum) and torch's max.
     import torch
 
     from index.model.torch_engine import pool

@@ -64,8 +64,8 @@ def exact(vectors, ids, queries, k):
 def test_flat_while_small_then_ivf(grown):
     writer, store, kinds = grown
     assert kinds[:7] == [FLAT] * 7 and kinds[-1] == IVF
-    info = writer.describe()
-    assert store.describe() == info  # the reader's index is the one the writer built
+    info = writer.index_info()
+    assert store.index_info() == info  # the reader's index is the one the writer built
     assert info["type"] == IVF and info["vectors"] == N
     assert info["nlist"] == lists_for(info["built_for"], POLICY)
     assert 1 <= info["nprobe"] <= info["nlist"] // 4
@@ -81,7 +81,7 @@ def test_recall_at_10_against_exact_search_on_new_queries(grown, data):
     recall = np.mean([len(set(f) & set(t)) / 10 for f, t in zip(found, truth)])
     # The build measured recall on stored vectors; new queries from the same clusters come close to it.
     assert recall >= 0.9, recall
-    assert store.describe()["recall_at_10"] >= 0.9
+    assert store.index_info()["recall_at_10"] >= 0.9
 
 
 def test_scores_are_cosine_similarities_to_8_bit_precision(grown, data):
@@ -120,7 +120,7 @@ def test_a_reopened_writer_and_a_reader_see_the_same_index(grown, data):
     writer, _, _ = grown
     state = commit(writer)
     again = LayerStore(writer.db, "parts", DIM, state, policy=POLICY)
-    assert again.describe() == writer.describe() and len(again) == N
+    assert again.index_info() == writer.index_info() and len(again) == N
     q = gen.queries(5, N)
     assert np.array_equal(searchable(writer.db, again.state()).search(q, 10)[1],
                           searchable(writer.db, state).search(q, 10)[1])
@@ -131,10 +131,10 @@ def test_the_index_is_rebuilt_as_the_store_grows_and_shrinks(data, tmp_path):
     policy = IndexPolicy(flat_max=2_000, train_per_list=20)
     store = LayerStore(tmp_path, "parts", DIM, None, policy=policy)
     store.add(ids[:2_000], vectors[:2_000])
-    first = store.describe()["nlist"]
+    first = store.index_info()["nlist"]
     store.add(ids[2_000:20_000], vectors[2_000:20_000])  # 10 times larger: the lists are retrained
-    assert store.kind == IVF and store.describe()["nlist"] >= 2 * first
-    assert store.describe()["built_for"] == 20_000
+    assert store.kind == IVF and store.index_info()["nlist"] >= 2 * first
+    assert store.index_info()["built_for"] == 20_000
     store.remove(ids[:19_500])  # below half of flat_max: exact again
     assert store.kind == FLAT and len(store) == 500
     assert np.abs(store.reconstruct(ids[19_500:19_505]) - vectors[19_500:19_505]).max() < 5e-3
@@ -157,7 +157,7 @@ def test_pca_reduced_store_keeps_the_interface_and_cuts_code_size(data, tmp_path
     writer = LayerStore(tmp_path, "parts", DIM, None, policy=IndexPolicy(flat_max=8_000, pca_dim=128))
     writer.add(ids[:12_000], vectors[:12_000])
     store = searchable(tmp_path, commit(writer))
-    info = store.describe()
+    info = store.index_info()
     assert info["pca_dim"] == 128 and info["codes"] == "fp16" and info["code_bytes"] == 2 * 128  # < fp16_below
     scores, found = store.search(vectors[:5], 1)
     assert found[:, 0].tolist() == ids[:5].tolist()  # each stored vector finds itself
@@ -190,7 +190,7 @@ def test_an_archive_switches_to_ivf_records_it_in_the_manifest_and_stays_consist
     info = archive.manifest["indexes"]["colour"]
     assert info["type"] == IVF and info["vectors"] == 48 and "recall_at_10" in info
     reopened = Archive.open(tmp_path / "db")
-    assert reopened.store("colour").describe() == info  # loaded with what was measured at build time
+    assert reopened.store("colour").index_info() == info  # loaded with what was measured at build time
     assert reopened.reconcile() == {"dropped": 0, "requeued": 0}
     top = reopened.search(str(folder / "07.png"), k=1)["results"][0]
     assert top["path"].endswith("07.png") and top["score"] == pytest.approx(1.0, abs=5e-3)
@@ -255,12 +255,12 @@ def test_a_low_dimension_store_is_built_with_16_bit_codes_and_an_8_bit_one_is_co
     # A store built before 16-bit codes existed (as fp16_below=0 builds it): 8-bit codes.
     store = LayerStore(tmp_path, "colour", dim, None, policy=IndexPolicy(flat_max=2_000, fp16_below=0))
     store.add(ids[:4_000], x[:4_000])
-    assert store.describe()["codes"] == "sq8"
+    assert store.index_info()["codes"] == "sq8"
     nlist = store.nlist()
     store.policy = IndexPolicy(flat_max=2_000)
     store.add(ids[4_000:12_000], x[4_000:12_000])  # the next rebuild (more lists) re-encodes them
     store.add(ids[12_000:], x[12_000:])  # coded as 16-bit floats from the start
-    info = store.describe()
+    info = store.index_info()
     assert store.nlist() > nlist and info["codes"] == "fp16" and info["code_bytes"] == 2 * dim
     assert info["recall_at_10"] >= IndexPolicy().target_recall
     reader = searchable(tmp_path, commit(store))

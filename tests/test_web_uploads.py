@@ -94,10 +94,10 @@ def test_region_and_whole_image_queries_on_the_kept_copy_match_the_full_image(sa
     kept = keep(buf.getvalue(), LIMIT, archive.backbone.input_size)
     full = Image.open(io.BytesIO(buf.getvalue())).convert("RGB")
     for layer in ("parts", "objects"):
-        assert _cosine(archive.describe(full, layer), archive.describe(kept.image(), layer)) > 0.99
+        assert _cosine(archive.query_vector(full, layer), archive.query_vector(kept.image(), layer)) > 0.99
         for box in ([0.1, 0.1, 0.6, 0.6], [0.4, 0.2, 0.6, 0.4]):
-            before = archive.describe(full, layer, box)
-            now = archive.describe(kept.image(box), layer, box)
+            before = archive.query_vector(full, layer, box)
+            now = archive.query_vector(kept.image(box), layer, box)
             assert _cosine(before, now) > 0.97, (layer, box)
 
 

@@ -1,7 +1,6 @@
 """The JSON API: everything the page does, for other archive tools too (see /api/openapi.json)."""
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 from flask import Blueprint, Response, jsonify, request, url_for
@@ -16,7 +15,6 @@ OPENAPI = Path(__file__).with_name("openapi.json")
 
 
 @bp.errorhandler(params.BadRequest)
-@bp.errorhandler(params.NotFound)
 def _client_error(exc):
     return jsonify(error=str(exc)), exc.status
 

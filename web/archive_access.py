@@ -29,7 +29,7 @@ class Holder:
         self.cache_size, self.cache_bytes, self.max_pixels = cache_size, cache_bytes, max_pixels
 
     def decode(self, data: bytes) -> KeptQuery:
-        """Raises index.decode.DecodeError for anything that is not a usable image."""
+        """Raises index.api.DecodeError for anything that is not a usable image."""
         with self.decoding:
             try:
                 return keep(data, self.max_pixels, self.input_size)

@@ -11,10 +11,6 @@ class BadRequest(Exception):
     status = 400
 
 
-class NotFound(Exception):
-    status = 404
-
-
 def integer(name: str, default: int | None = None, lo: int = 0, hi: int = 10**9) -> int | None:
     raw = request.values.get(name)
     if raw is None or raw == "":

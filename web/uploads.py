@@ -62,7 +62,7 @@ def release_freed_memory() -> None:
 
 
 def keep(data: bytes, max_pixels: int, input_size: int) -> KeptQuery:
-    """Decode an upload once, reduced to what is kept. Raises index.decode.DecodeError.
+    """Decode an upload once, reduced to what is kept. Raises index.api.DecodeError.
 
     open_image refuses an image declaring more than max_pixels from its header, before any pixel
     is decoded; min_side=DISPLAY_SIDE lets a large JPEG decode at 1/2, 1/4 or 1/8 scale (libjpeg's

@@ -68,10 +68,11 @@ def main() -> None:
 @main.command("index")
 @click.argument("paths", nargs=-1, required=True, type=click.Path())
 @click.option("--db", required=True, type=click.Path(file_okay=False), help=DB_HELP)
-@click.option("--layers", help="Comma-separated layers to keep: presets (colour, texture, parts, objects) or node names. "
-              "Default: all four presets. Fixed when the archive is created.")
+@click.option("--layers", help="Comma-separated layers to keep: presets (colour, texture, parts, objects) or node "
+              "names. Default: all four presets. Fixed when the archive is created.")
 @click.option("--backbone", type=click.Choice(NAMES), help=f"Network to use (default {DEFAULT_BACKBONE}).")
-@click.option("--weights", type=click.Path(exists=True, dir_okay=False), help="Weights file (state dict) for the backbone.")
+@click.option("--weights", type=click.Path(exists=True, dir_okay=False),
+              help="Weights file (state dict) for the backbone.")
 @click.option("--gem-p", type=float, help="GeM pooling exponent (default 3; 1 = average pooling).")
 @click.option("--whiten/--no-whiten", default=None, help="Learn PCA whitening once the archive holds 1000 images.")
 @click.option("--batch-size", default=8, show_default=True, type=click.IntRange(1, 256),
@@ -130,9 +131,10 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, e
 
 def _print_renamed(done: dict, as_json: bool) -> None:
     if not as_json:
-        click.echo(f"{done['renamed']} rows re-pointed from {done['old']} to {done['new']} ({done['found']} files found "
-                   f"there, {done['not_found']} not)" + (f"; {done['dropped_doubles']} rows already catalogued at the "
-                                                         "new place kept theirs" if done["dropped_doubles"] else ""))
+        kept = (f"; {done['dropped_doubles']} rows already catalogued at the new place kept theirs"
+                if done["dropped_doubles"] else "")
+        click.echo(f"{done['renamed']} rows re-pointed from {done['old']} to {done['new']} "
+                   f"({done['found']} files found there, {done['not_found']} not){kept}")
 
 
 def _print_notes(report: dict, db: str) -> None:
@@ -159,7 +161,8 @@ def _print_notes(report: dict, db: str) -> None:
 @click.option("-k", default=10, show_default=True, type=click.IntRange(1, 10000), help="How many results.")
 @click.option("--box", help="Search by a region only: x0,y0,x1,y1 as fractions of the image (0..1).")
 @click.option("--folder", help="Only results below this folder.")
-@click.option("--json", "as_json", is_flag=True, help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
+@click.option("--json", "as_json", is_flag=True,
+              help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
 def search(image, db, item_id, layer, k, box, folder, as_json):
     """Find the items most like IMAGE (any file) or like indexed item --id N."""
     if (image is None) == (item_id is None):
@@ -204,8 +207,9 @@ def info(db, as_json):
     b = data["backbone"]
     click.echo(f"archive   {data['db']}")
     click.echo(f"backbone  {b['name']} (weights: {b['weights_source']}, sha256 {b['weights_sha256'][:12]})")
+    learned = data["whitening"]["learned"]
     click.echo(f"pooling   GeM p={data['pooling']['p']}, L2-normalised"
-               + (f"; PCA whitening learned for {', '.join(data['whitening']['learned'])}" if data["whitening"]["learned"]
+               + (f"; PCA whitening learned for {', '.join(learned)}" if learned
                   else "; PCA whitening on (learned at 1000 images)" if data["whitening"]["enabled"] else ""))
     click.echo(f"images    {data['images']} indexed ({data['bytes'] / 1e6:.1f} MB), {data['pending']} pending, "
                f"{data['failed']} could not be read")
@@ -218,9 +222,11 @@ def info(db, as_json):
     kinds = []
     for l in data["layers"]:
         ix = l["index"]
-        kinds.append(f"{l['name']} {type_name(ix)}" + (f" (nlist {ix['nlist']}, nprobe {ix['nprobe']}"
-                     + (f", recall@10 {ix['recall_at_10']:.3f}" if "recall_at_10" in ix else "") + ")" if "nlist" in ix else ""))
-    click.echo(f"indexes   {'; '.join(kinds)}; about {data['index_bytes_per_image']:.0f} bytes per image in a searching process's memory")
+        recall = f", recall@10 {ix['recall_at_10']:.3f}" if "recall_at_10" in ix else ""
+        lists = f" (nlist {ix['nlist']}, nprobe {ix['nprobe']}{recall})" if "nlist" in ix else ""
+        kinds.append(f"{l['name']} {type_name(ix)}{lists}")
+    click.echo(f"indexes   {'; '.join(kinds)}; about {data['index_bytes_per_image']:.0f} bytes per image "
+               "in a searching process's memory")
     if data["last_run"]:
         r = data["last_run"]
         click.echo(f"last run  {r['started_at']} -> {r['finished_at'] or '(running)'}: {r['status']}")
@@ -247,13 +253,15 @@ def layers(backbone, as_json):
     for row in data["layers"]:
         preset = f"{row['preset']}: {row['hint']}" if row["preset"] else ""
         click.echo(f"  {row['node']:<22} {row['channels']:>8} {row['stride']:>6}  {preset}")
-    click.echo(f"Default layers: {', '.join(data['default_layers'])}; search defaults to {data['default_search_layer']}. "
+    click.echo(f"Default layers: {', '.join(data['default_layers'])}; "
+               f"search defaults to {data['default_search_layer']}. "
                "Any other node name of the network's graph is accepted too.")
 
 
 @main.command()
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
-@click.option("--repair", is_flag=True, help="Fix what can be fixed; re-embed only images whose descriptors are missing.")
+@click.option("--repair", is_flag=True,
+              help="Fix what can be fixed; re-embed only images whose descriptors are missing.")
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 def check(db, repair, as_json):
     """Verify the archive: SQLite integrity, catalog against every vector store, manifest, orphans.

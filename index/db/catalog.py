@@ -138,7 +138,8 @@ class Catalog:
         with self.db.conn:
             for image_id, values in updates:
                 if "path" in values:
-                    values = {**values, "folder": os.path.dirname(values["path"]), "name": os.path.basename(values["path"])}
+                    path = values["path"]
+                    values = {**values, "folder": os.path.dirname(path), "name": os.path.basename(path)}
                 sets = ", ".join(f"{k} = ?" for k in values)
                 self.db.execute(f"update images set {sets} where id = ?", [*values.values(), image_id])
 
@@ -221,7 +222,8 @@ class Catalog:
         """(id, path) of every image row, a chunk of rows in memory at a time."""
         last = -1
         while True:
-            rows = self.db.execute("select id, path from images where id > ? order by id limit ?", [last, chunk]).fetchall()
+            rows = self.db.execute("select id, path from images where id > ? order by id limit ?",
+                                   [last, chunk]).fetchall()
             if not rows:
                 return
             yield from rows

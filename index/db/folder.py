@@ -96,7 +96,8 @@ def _probe(catalog: Catalog, db: Path, manifest: dict) -> None:
         if manifest.get("generation", 0) > 0 or manifest.get("stores"):
             raise CatalogProblem(
                 f"the catalog {Path(db) / CATALOG} is empty while the vector stores hold descriptors: it was "
-                "replaced or lost. Restore it from a backup, or index into a new, empty --db folder; nothing was changed")
+                "replaced or lost. Restore it from a backup, or index into a new, empty --db folder; "
+                "nothing was changed")
         if catalog.read_only:
             raise CatalogProblem(f"the catalog {Path(db) / CATALOG} holds no tables and the folder is read-only")
         catalog._create()  # an archive created but never indexed into

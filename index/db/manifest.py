@@ -9,12 +9,15 @@ from pathlib import Path
 from ..common.errors import ArchiveError
 from ..common.files import atomic_write
 
-FORMAT = 2  # 2: stores as codec + segments (index.segments); 1: one FAISS file per layer
+FORMAT = 2  # 2: stores as codec + segments (index.vectors.segments); 1: one FAISS file per layer
 FILE = "manifest.json"
 
 
 def store_file(layer: str) -> str:
     return "vectors-" + re.sub(r"[^A-Za-z0-9._-]", "_", layer) + ".faiss"
+
+
+LAYER_COLUMNS = ("name", "node", "channels", "stride", "dim")  # a layer as the catalog and `info` show it
 
 
 def layer_entry(manifest: dict, name: str | None) -> dict:

@@ -42,9 +42,6 @@ _HEIF_BRANDS = frozenset(
      b"mif1", b"msf1"}
 )
 
-_ALPHA_MODES = ALPHA_MODES
-_DEEP_MODES = DEEP_MODES
-
 # Exif Orientation value -> the Pillow transpose that displays it upright.
 _TRANSPOSE = {
     2: Image.Transpose.FLIP_LEFT_RIGHT,
@@ -172,7 +169,7 @@ def _open_formats() -> tuple[str, ...]:
 def _decode_stream(fp: IO[bytes], max_pixels: int, min_side: int | None, max_bytes: int) -> Decoded:
     # No warnings.catch_warnings() here: it is not thread-safe and decoding
     # runs in server threads too (see decode_memory.quiet_pillow_warnings and
-    # index.reader).  Pillow's bomb warning/error, when raised as an
+    # index.ingest.decode_task).  Pillow's bomb warning/error, when raised as an
     # exception, becomes a DecodeError below like any other failure.
     try:
         with Image.open(fp, formats=_open_formats()) as im:
@@ -235,7 +232,7 @@ def _small_rgb(im: Image.Image, min_side: int | None) -> Image.Image:
     """The decoded image as 8-bit RGB, reduced for min_side; reduced first where that gives the same
     pixels, so no full-size copy is made (decode_memory)."""
     factor = factor_for(im.size, min_side)
-    if im.mode in _DEEP_MODES:
+    if im.mode in DEEP_MODES:
         return deep_to_8bit(im, factor).convert("RGB")
     if factor >= 2 and reduces_first(im):
         return _to_rgb(reduce(im, factor))
@@ -262,9 +259,9 @@ def _reduce(image: Image.Image, min_side: int | None) -> Image.Image:
 
 def _to_rgb(im: Image.Image) -> Image.Image:
     """Return a new 8-bit RGB image (never the file-backed `im` itself)."""
-    if im.mode in _DEEP_MODES:
+    if im.mode in DEEP_MODES:
         return deep_to_8bit(im).convert("RGB")
-    if im.mode in _ALPHA_MODES or "transparency" in im.info:
+    if im.mode in ALPHA_MODES or "transparency" in im.info:
         return _composite_on_white(im)
     return im.convert("RGB")
 

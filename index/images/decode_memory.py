@@ -130,6 +130,6 @@ def quiet_pillow_warnings() -> None:
     """Pillow's warnings (DecompressionBombWarning below our own pixel limit, "Corrupt EXIF data" and
     the like) never reach the user's terminal. For the kinscope command and decode workers only
     (process-wide filters; a library user keeps Pillow's defaults). Decode workers also record them
-    with the file (index.reader)."""
+    with the file (index.ingest.decode_task)."""
     warnings.filterwarnings("ignore", category=Image.DecompressionBombWarning)
     warnings.filterwarnings("ignore", module=r"PIL(\.|$)")

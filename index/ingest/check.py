@@ -95,7 +95,8 @@ def _check_catalog_and_stores(parts, report: Report) -> None:
     ok_ids, pending = _consistent_state(parts, report, running)
     report.checked["images"] = int(len(ok_ids))
     if pending and running:
-        report.add("info", f"an indexer is running: {len(pending)} images are waiting for descriptors", count=len(pending))
+        report.add("info", f"an indexer is running: {len(pending)} images are waiting for descriptors",
+                   count=len(pending))
     elif pending:
         report.add("warning", f"{len(pending)} images are waiting for descriptors (an interrupted run)",
                    "run `kinscope index` again, or `kinscope check --repair`", len(pending))

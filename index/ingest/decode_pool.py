@@ -85,7 +85,8 @@ class DecodePool:
         env["PYTHONPATH"] = os.pathsep.join(paths)
         try:
             proc = subprocess.Popen(
-                [sys.executable, "-m", "index.ingest.decode_pool", str(task_r), str(result_w), self.reader, str(self.nice)],
+                [sys.executable, "-m", "index.ingest.decode_pool", str(task_r), str(result_w), self.reader,
+                 str(self.nice)],
                 pass_fds=(task_r, result_w), stdin=subprocess.DEVNULL, env=env, close_fds=True)
         finally:
             os.close(task_r)
@@ -115,9 +116,6 @@ class DecodePool:
         self._workers[slot] = self._spawn()
         self.replaced += 1
         return held
-
-    def pids(self) -> list[int]:
-        return [w.proc.pid for w in self._workers]
 
     def peak_rss(self) -> int:
         """Sum over worker slots of the largest per-process peak resident memory (an upper bound)."""

@@ -23,8 +23,8 @@ from ..common.paths import below
 from ..db import manifest as mf
 from ..db.catalog import Catalog
 from ..db.folder import damaged_message
-from ..images.renditions import THUMBS, cached_thumbnails
 from ..db.roots import adopt_resolved_roots, drop_empty_gone_roots, gone_roots, missing_root_message
+from ..images.renditions import THUMBS, cached_thumbnails
 from ..model.choice import checked, export_pays_off
 from ..model.pooling import PCAWhitening
 from ..search.exemplars import Exemplars
@@ -96,7 +96,7 @@ class Indexer:
         self.manifest.setdefault("stores", {}).update(states)
         self.manifest["generation"] += 1
         self.manifest["counts"] = {w.layer: len(w) for w in writers}
-        self.manifest["indexes"] = {w.layer: w.describe() for w in writers}
+        self.manifest["indexes"] = {w.layer: w.index_info() for w in writers}
         mf.write(self.db, self.manifest)
         for w in writers:
             w.committed()

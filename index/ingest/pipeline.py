@@ -1,6 +1,6 @@
 """The indexing job: decode in worker processes, embed in batches, checkpoint stores then catalog.
 
-Decode workers (index.decode_pool) read, hash, decode at reduced size and resize each file while the
+Decode workers (index.ingest.decode_pool) read, hash, decode at reduced size and resize each file while the
 main thread runs batched inference on what they sent; a bounded number of files is in flight, so
 memory stays flat whatever the archive size. The cores are shared out so the two sides do not fight:
 the inference engine gets `inference_threads` threads that sleep rather than spin when idle, each
@@ -49,7 +49,7 @@ def cores() -> int:
 
 def configure_threads(inference_threads: int) -> None:
     """Thread pools of the indexing process: torch (if loaded: the torch engine) and FAISS share one
-    count; and the allocator told to reuse large buffers (index.allocator)."""
+    count; and the allocator told to reuse large buffers (index.model.allocator)."""
     import faiss
 
     keep_buffers()

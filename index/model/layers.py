@@ -7,7 +7,7 @@ from functools import lru_cache
 import torch
 from torchvision.models.feature_extraction import create_feature_extractor, get_graph_node_names
 
-from .backbones import PRESET_HINTS, Backbone, BackboneError  # noqa: F401  (PRESET_HINTS: re-exported)
+from .backbones import PRESET_HINTS, Backbone, BackboneError
 
 
 @dataclass(frozen=True)

@@ -1,9 +1,9 @@
 """Descriptors from the cached ONNX model alone: what the indexer uses when the model is exported.
 
-Same interface as index.embed.Embedder for indexing (size, engine, embed_pixels, embed_images), built
+Same interface as index.model.torch_embedder.Embedder for indexing (size, engine, embed_pixels, embed_images), built
 from the archive's manifest and the cached model file, without importing torch: an indexing process
 then holds ONNX Runtime, FAISS and the catalog, not torch and torchvision (about 0.7 GB resident on
-their own). Exporting the model needs torch; index.engines does it, in a child process when called
+their own). Exporting the model needs torch; index.model.child does it, in a child process when called
 from Archive.add.
 """
 from __future__ import annotations
@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from .onnx_engine import OnnxEngine
 from ..images.preprocess import fit_square, to_input
+from .onnx_engine import OnnxEngine
 
 
 class OnnxEmbedder:
@@ -26,7 +26,7 @@ class OnnxEmbedder:
         self._std = np.asarray(std, np.float32)
 
     def inputs(self, pixels: np.ndarray) -> np.ndarray:
-        """(N, S, S, 3) uint8 from index.preprocess.fit_square -> (N, 3, S, S) float32."""
+        """(N, S, S, 3) uint8 from index.images.preprocess.fit_square -> (N, 3, S, S) float32."""
         return to_input(pixels, self._mean, self._std)
 
     def embed_pixels(self, pixels: np.ndarray) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:

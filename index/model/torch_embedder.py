@@ -8,11 +8,11 @@ import torch
 from PIL import Image
 from torchvision.models.feature_extraction import create_feature_extractor
 
+from ..images.preprocess import fit_square, to_input
 from .backbones import Backbone
 from .choice import make_engine
-from .torch_engine import TorchEngine
 from .layers import Layer
-from ..images.preprocess import fit_square, to_input
+from .torch_engine import TorchEngine
 
 
 class Embedder:
@@ -68,7 +68,7 @@ class Embedder:
         return to_input(fit_square(image, self.size)[None], self._mean, self._std)[0]
 
     def inputs(self, pixels: np.ndarray) -> np.ndarray:
-        """(N, S, S, 3) uint8 from index.preprocess.fit_square -> (N, 3, S, S) float32."""
+        """(N, S, S, 3) uint8 from index.images.preprocess.fit_square -> (N, 3, S, S) float32."""
         return to_input(pixels, self._mean, self._std)
 
     # --- forward ----------------------------------------------------------------------------

@@ -26,7 +26,7 @@ def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray]
     """Feature maps -> per layer the L2-normalised GeM descriptor (N, C), and each channel's peak
     value (N, C), its flat position (N, C) and the grid (H, W).
 
-    The arithmetic of index.pooling.gem (clamp at GEM_EPS, divide by the per-channel maximum, power,
+    The arithmetic of index.model.pooling.gem (clamp at GEM_EPS, divide by the per-channel maximum, power,
     mean, root, rescale; bit for bit the same result), done in place: the maps are overwritten.
     In place matters: fresh 30 MB temporaries per batch cost more than the arithmetic (page faults).
     """

@@ -9,7 +9,7 @@
   re-normalised; scores are cosines of the projected vectors). A hash-table direct map keeps ids
   removable and vectors reconstructible. `nprobe` is the smallest step whose recall@10, measured
   against exact search with stored vectors as queries, reaches the policy's target.
-index.store_build builds them (segment by segment); this module holds the types and the policy.
+index.vectors.rebuild builds them (segment by segment); this module holds the types and the policy.
 
 HNSW is not offered for stores: it cannot remove ids, which incremental re-indexing needs.
 """
@@ -23,7 +23,6 @@ import numpy as np
 
 FLAT = "flat"
 IVF = "ivf-sq8"
-KINDS = (FLAT, IVF)
 # Per stored vector, beside its codes: the 8-byte id in the list or id map, and the id -> position
 # hash table (std::unordered_map: node and bucket, about 40 bytes; bench_search measures the total).
 ID_BYTES = 8
@@ -156,17 +155,13 @@ def ivf_fields(index: faiss.Index) -> dict:
                 codes=codes_of(index), pca_dim=int(ivf.d) if ivf.d != index.d else None)
 
 
-def describe(index: faiss.Index) -> dict:
+def index_info(index: faiss.Index) -> dict:
     return {"type": kind_of(index), "vectors": int(index.ntotal), "dim": int(index.d), **ivf_fields(index)}
-
-
-def bytes_per_vector(index: faiss.Index) -> float:
-    return bytes_per_vector_of(describe(index))
 
 
 def bytes_per_vector_of(info: dict) -> float:
     """Memory a searching process holds per stored vector: codes, id, id lookup (an estimate; see
-    bench_search), from a `describe` dict."""
+    bench_search), from an `index_info` dict."""
     code = 4 * info["dim"] if info["type"] == FLAT else info["code_bytes"]
     return float(code + ID_BYTES + LOOKUP_BYTES)
 

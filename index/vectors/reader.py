@@ -1,10 +1,11 @@
 """The readers' side of the stores: a layer's vectors as one in-memory FAISS index keyed by catalog
 id (VectorStore, what searches use), and the stores of an archive as one process reads them (Reader).
 
-The index is exact inner-product search (flat) or IVF with 8-bit scalar quantization (see
-index.vectors.kinds); the indexer's writer (index.vectors.writer) chooses and builds it, segment by
-segment on disk, and index.vectors.segments assembles it for readers. Scores are inner products of
-L2-normalised vectors (cosine similarities; with SQ8 codes to about 1e-3).
+The index is exact inner-product search (flat) or IVF with scalar-quantized codes (see
+index.vectors.kinds). On disk it is segment files: the indexer's writer (index.vectors.writer) fills
+them and decides when the type changes, index.vectors.rebuild re-lays them out, and
+index.vectors.segments assembles them into the one index a reader searches. Scores are inner products
+of L2-normalised vectors (cosine similarities; with 8-bit codes to about 1e-3).
 """
 from __future__ import annotations
 
@@ -22,8 +23,8 @@ from .segments import StoreFileError, assemble, update
 
 class VectorStore:
     """An in-memory FAISS index over L2-normalised descriptors (inner product = cosine), keyed by
-    catalog id: what readers search. Its type is what it was built as (index.layer_store builds and
-    changes the stored index; this class never does)."""
+    catalog id: what readers search. Its type is what it was built as (the writer and the rebuild
+    change the stored index; this class never does)."""
 
     def __init__(self, dim: int, index: faiss.Index | None = None, *, measured: dict | None = None):
         self.dim = dim
@@ -79,13 +80,9 @@ class VectorStore:
             return np.zeros((nq, 0), np.float32), np.zeros((nq, 0), np.int64)
         return self.index.search(np.ascontiguousarray(queries, dtype=np.float32), k)
 
-    def describe(self) -> dict:
+    def index_info(self) -> dict:
         """Type and parameters (recorded in the manifest), with the recall measured when it was built."""
-        return {**vi.describe(self.index), **self.measured}
-
-    def bytes_per_vector(self) -> float:
-        """Memory the index holds per stored vector: codes, id, id lookup (an estimate; see bench_search)."""
-        return vi.bytes_per_vector(self.index)
+        return {**vi.index_info(self.index), **self.measured}
 
     # --- files ----------------------------------------------------------------------------------
     def save(self, path: Path) -> None:
@@ -96,9 +93,10 @@ class VectorStore:
     def load(cls, path: Path, *, measured: dict | None = None) -> "VectorStore":
         """A store saved as one FAISS file (archives from before segments, and tests)."""
         index = faiss.read_index(str(path))
-        info = vi.describe(index)
+        info = vi.index_info(index)
         # What was measured at build time is kept only if it describes this very index.
-        keep = measured if measured and all(measured.get(k, v) == v for k, v in info.items() if k != "vectors") else None
+        same = measured and all(measured.get(k, v) == v for k, v in info.items() if k != "vectors")
+        keep = measured if same else None
         return cls(index.d, index, measured={k: v for k, v in (keep or {}).items() if k not in info})
 
 

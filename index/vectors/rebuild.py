@@ -1,6 +1,6 @@
 """Re-laying a layer's store out as another index type, one segment at a time.
 
-index.layer_store calls this when the store's size calls for another index type (flat -> IVF-SQ8 past
+index.vectors.writer calls this when the store's size calls for another index type (flat -> IVF-SQ8 past
 the flat limit, twice the inverted lists after each fourfold growth, flat again when it shrinks) and
 when learned whitening maps every vector to a new space. Memory: one source segment, one output
 segment, the training sample (at most TRAIN_BYTES) and the probe queries; never the whole store.
@@ -28,8 +28,8 @@ from typing import Callable
 import faiss
 import numpy as np
 
-from . import segments as sg
 from . import kinds as vi
+from . import segments as sg
 from .kinds import FLAT, IVF
 
 TRAIN_BYTES = 256 * 2**20  # the k-means sample, as codes (IVF -> IVF) or float32 vectors
@@ -245,7 +245,8 @@ class _Calibration:
         # the codec against exact search in the layer's (`original`, only when measuring its loss).
         self.space = space
         self.in_space = space(self.queries) if space is not None else self.queries
-        self.original = faiss.ResultHeap(len(own), self.k, keep_max=True) if space is not None and measure_codes else None
+        keep_original = space is not None and measure_codes
+        self.original = faiss.ResultHeap(len(own), self.k, keep_max=True) if keep_original else None
         probe = list(vi.probe_steps(nlist))
         self.first = [s for s in probe if s <= max(1, nlist // FIRST_PASS_SHARE)]
         self.later = [s for s in probe if s not in self.first]

@@ -2,12 +2,13 @@
 
 In the database folder, `stores/<layer>/` holds:
 - `codec-<n>.faiss`: the trained, empty IVF index (coarse centroids, the scalar quantizer: 8-bit
-  ranges or 16-bit floats, the optional PCA), written when the index type is (re)built; none while the store is flat (exact);
+  ranges or 16-bit floats, the optional PCA), written when the index type is (re)built; none while the
+  store is flat (exact);
 - `seg-<n>.npz`: a segment, some of the layer's vectors: `ids` (int64), and either `vectors` (float32,
   flat) or `lists` (int32, the inverted list of each vector) and `codes` (uint8, one row a vector),
   with `codec`, the name of the codec file that encoded them.
 
-The manifest names each layer's codec and segments (see index.layer_store); files are written once
+The manifest names each layer's codec and segments (see index.vectors.writer); files are written once
 and never changed, so a reader that loads the files the manifest names sees one consistent state.
 """
 from __future__ import annotations
@@ -19,8 +20,8 @@ from pathlib import Path
 import faiss
 import numpy as np
 
-from . import kinds as vi
 from ..common.files import atomic_write
+from . import kinds as vi
 
 STORES = "stores"
 
@@ -90,7 +91,8 @@ def extract(index: faiss.Index) -> dict:
             codes.append(faiss.rev_swig_ptr(lists.get_codes(l), size * code_size).reshape(size, code_size).copy())
             which.append(np.full(size, l, np.int32))
     if not ids:
-        return {"ids": np.zeros(0, np.int64), "lists": np.zeros(0, np.int32), "codes": np.zeros((0, code_size), np.uint8)}
+        return {"ids": np.zeros(0, np.int64), "lists": np.zeros(0, np.int32),
+                "codes": np.zeros((0, code_size), np.uint8)}
     return {"ids": np.concatenate(ids).astype(np.int64), "lists": np.concatenate(which),
             "codes": np.concatenate(codes)}
 
@@ -148,7 +150,8 @@ def empty(dim: int, codec: faiss.Index | None) -> faiss.Index:
 
 
 def decode(codec: faiss.Index | None, arrays: dict) -> np.ndarray:
-    """The float32 vectors of a segment (from the codes for IVF: 8-bit about 1e-3 off, 16-bit floats about 1e-4), in segment order."""
+    """The float32 vectors of a segment (from the codes for IVF: 8-bit about 1e-3 off, 16-bit floats about
+    1e-4), in segment order."""
     if codec is None:
         return np.ascontiguousarray(arrays["vectors"], np.float32)
     ivf = ivf_of(codec)
@@ -196,7 +199,8 @@ def read_segment(db: Path, segment: Segment, codec_file: str | None) -> dict:
     except Exception as exc:
         raise StoreFileError(f"the segment {segment.file} cannot be read: {exc}") from None
     if str(arrays.pop("codec", "")) != (codec_file or ""):
-        raise StoreFileError(f"the segment {segment.file} was encoded by another codec than {codec_file or 'none (flat)'}")
+        raise StoreFileError(f"the segment {segment.file} was encoded by another codec than "
+                             f"{codec_file or 'none (flat)'}")
     if len(arrays.get("ids", ())) != segment.vectors:
         raise StoreFileError(f"the segment {segment.file} holds {len(arrays.get('ids', ()))} vectors, "
                              f"the manifest says {segment.vectors}")
@@ -214,7 +218,8 @@ def read_ids(db: Path, segment: Segment) -> np.ndarray:
     except Exception as exc:
         raise StoreFileError(f"the segment {segment.file} cannot be read: {exc}") from None
     if len(ids) != segment.vectors:
-        raise StoreFileError(f"the segment {segment.file} holds {len(ids)} vectors, the manifest says {segment.vectors}")
+        raise StoreFileError(f"the segment {segment.file} holds {len(ids)} vectors, "
+                             f"the manifest says {segment.vectors}")
     return ids
 
 

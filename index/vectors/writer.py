@@ -1,7 +1,7 @@
 """The indexer's side of one layer's vector store: appends, removals and checkpoints in bounded memory.
 
 A LayerStore keeps in memory only the codec (the trained IVF index, empty; none while flat) and
-the open segment (the tail) that new vectors go into; the sealed segments stay on disk (index.segments).
+the open segment (the tail) that new vectors go into; the sealed segments stay on disk (index.vectors.segments).
 - add: into the tail; an id already stored elsewhere is removed there first (a re-embedded file).
 - remove: from the tail, and from each sealed segment whose id range may hold the ids (that segment
   is rewritten into a new file without them).
@@ -11,7 +11,7 @@ the open segment (the tail) that new vectors go into; the sealed segments stay o
   so a crash at any point leaves the last committed state whole (plus unreferenced leftovers, which
   `remove_leftovers` deletes at the next start).
 - when the store's size calls for another index type (flat -> IVF, IVF grown past its lists, or
-  shrunk back to flat), index.store_build rebuilds it segment by segment.
+  shrunk back to flat), index.vectors.rebuild rebuilds it segment by segment.
 Memory: the codec (nlist x dim floats), one tail, one segment being rewritten; not the archive.
 """
 from __future__ import annotations
@@ -22,10 +22,10 @@ from pathlib import Path
 import faiss
 import numpy as np
 
-from . import segments as sg
 from . import kinds as vi
-from .segments import Segment
+from . import segments as sg
 from .kinds import FLAT, IVF, IndexPolicy
+from .segments import Segment
 
 SEGMENT_BYTES = 32 * 2**20  # a segment is sealed once it holds this much index data
 ABSORB_BELOW = SEGMENT_BYTES // 4  # a sealed segment shrunk below this goes back into the tail
@@ -49,7 +49,8 @@ class LayerStore:
             self.measured = dict(state.get("measured") or {})
             self._counter = int(state.get("next_file", 0))
         else:
-            self.dim, self.codec_file, self.codec, self.sealed, self.measured, self._counter = dim, None, None, [], {}, 0
+            self.dim, self.codec_file, self.codec = dim, None, None
+            self.sealed, self.measured, self._counter = [], {}, 0
         self.tail = sg.empty(self.dim, self.codec)
         self.tail_from: Segment | None = None  # the committed segment the tail was loaded from
         self.tail_dirty = False
@@ -72,7 +73,7 @@ class LayerStore:
     def tail_bytes(self) -> int:
         return sg.data_bytes(self.codec, self.dim, int(self.tail.ntotal))
 
-    def describe(self) -> dict:
+    def index_info(self) -> dict:
         out = {"type": self.kind, "vectors": len(self), "dim": self.dim}
         if self.codec is not None:
             out.update(vi.ivf_fields(self.codec))

@@ -11,7 +11,7 @@ from pathlib import Path
 import torch
 import torchvision
 
-from .base import USER_WEIGHTS, Backbone, BackboneError, Weights
+from .base import USER_WEIGHTS, Backbone, Weights
 
 # name -> presets (colour, texture, parts, objects) and the nodes worth listing
 MODELS = {
