@@ -10,13 +10,9 @@ import click
 
 from ..api import (DEFAULT_BACKBONE, ENGINES, NAMES, Archive, ArchiveError, connect_cluster, quiet_pillow_warnings,
                    sqlite_message, type_name)
+from .shared import DB_HELP, on_archive
+from .shared import fail as _fail
 
-DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
-
-
-def _fail(exc: Exception) -> None:
-    click.echo(f"kinscope: {exc}", err=True)
-    sys.exit(2)
 
 
 def _cluster(value: str | None):
@@ -173,13 +169,9 @@ def search(image, db, item_id, layer, k, box, folder, as_json):
             raise ValueError
     except ValueError:
         _fail(click.UsageError("--box takes four fractions: x0,y0,x1,y1"))
-    try:
-        with Archive.open(db) as archive:
-            folder = os.path.abspath(folder) if folder else None
-            result = archive.search(item_id if item_id is not None else image, layer=layer, k=k, box=region,
-                                    folder=folder)
-    except ArchiveError as exc:
-        _fail(exc)
+    folder = os.path.abspath(folder) if folder else None
+    result = on_archive(db, lambda archive: archive.search(item_id if item_id is not None else image, layer=layer,
+                                                           k=k, box=region, folder=folder))
     if as_json:
         keys = ("id", "path", "score", "width", "height")
         result = {key: result[key] for key in ("query", "layer")} | {
@@ -196,11 +188,7 @@ def search(image, db, item_id, layer, k, box, folder, as_json):
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 def info(db, as_json):
     """Counts, layers, backbone and the files that could not be read."""
-    try:
-        with Archive.open(db) as archive:
-            data = archive.info()
-    except ArchiveError as exc:
-        _fail(exc)
+    data = on_archive(db, lambda archive: archive.info())
     if as_json:
         click.echo(json.dumps(data, indent=2, default=str))
         return

@@ -4,20 +4,14 @@ from __future__ import annotations
 import csv
 import io
 import json
-import sys
 
 import click
 
 from ..api import Archive, ArchiveError
-
-DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
+from .shared import DB_HELP
+from .shared import fail as _fail
 CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
                "size", "mtime", "sha256", "exact_group")
-
-
-def _fail(message) -> None:
-    click.echo(f"kinscope: {message}", err=True)
-    sys.exit(2)
 
 
 def to_csv(doc: dict) -> str:

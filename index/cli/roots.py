@@ -2,18 +2,10 @@
 from __future__ import annotations
 
 import json
-import sys
 
 import click
 
-from ..api import Archive, ArchiveError
-
-DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
-
-
-def _fail(message) -> None:
-    click.echo(f"kinscope: {message}", err=True)
-    sys.exit(2)
+from .shared import DB_HELP, on_archive
 
 
 @click.group("roots")
@@ -29,11 +21,7 @@ def roots_cmd() -> None:
 @click.option("--json", "as_json", is_flag=True, help="Print JSON: [{root, rows, state}].")
 def list_cmd(db, as_json):
     """Every root with its catalogued images; `gone` = no longer there (or empty)."""
-    try:
-        with Archive.open(db) as archive:
-            rows = archive.roots()
-    except ArchiveError as exc:
-        _fail(exc)
+    rows = on_archive(db, lambda archive: archive.roots())
     if as_json:
         click.echo(json.dumps(rows, indent=2))
         return
@@ -52,11 +40,7 @@ def list_cmd(db, as_json):
 def rename_cmd(old, new, db, as_json):
     """Say that root OLD is now at NEW: its rows are re-pointed, their descriptors kept (nothing is
     embedded again). Run `kinscope index NEW` afterwards to pick up changes made since."""
-    try:
-        with Archive.open(db) as archive:
-            done = archive.rename_root(old, new)
-    except ArchiveError as exc:
-        _fail(exc)
+    done = on_archive(db, lambda archive: archive.rename_root(old, new))
     if as_json:
         click.echo(json.dumps(done, indent=2))
         return
@@ -77,11 +61,7 @@ def rename_cmd(old, new, db, as_json):
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 def forget_cmd(root, db, even_if_present, as_json):
     """Drop the rows below ROOT and their descriptors; the files themselves are not touched."""
-    try:
-        with Archive.open(db) as archive:
-            done = archive.forget_root(root, even_if_present=even_if_present)
-    except ArchiveError as exc:
-        _fail(exc)
+    done = on_archive(db, lambda archive: archive.forget_root(root, even_if_present=even_if_present))
     if as_json:
         click.echo(json.dumps(done, indent=2))
         return
