@@ -24,7 +24,7 @@ def _fail(message) -> None:
 def to_csv(doc: dict) -> str:
     """One row per member, with its group id; `keeper` is 1 for the suggested keeper."""
     buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\n")
+    writer = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\r\n")  # RFC 4180: CRLF
     writer.writeheader()
     for g in doc["groups"]:
         for m in g["members"]:

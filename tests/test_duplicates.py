@@ -178,7 +178,10 @@ def test_csv_output_has_one_row_per_member_with_its_group(dup_archive, tmp_path)
     target = tmp_path / "groups.csv"
     out = CliRunner().invoke(main, ["duplicates", "--db", str(db), "--format", "csv", "--output", str(target)])
     assert out.exit_code == 0, out.output
-    rows = list(csv.DictReader(open(target, newline="")))  # Python's csv module (RFC 4180 dialect)
+    raw = target.read_bytes()
+    # RFC 4180, section 2: each record ends with CRLF (and no bare LF ends one).
+    assert raw.endswith(b"\r\n") and raw.count(b"\n") == raw.count(b"\r\n")
+    rows = list(csv.DictReader(open(target, newline="")))  # read back by Python's csv module
     doc = archive.duplicates()
     assert len(rows) == sum(len(g["members"]) for g in doc["groups"])
     for g in doc["groups"]:
@@ -320,7 +323,7 @@ def test_exact_candidate_search_equals_numpy_brute_force():
 
 
 def test_approximate_search_finds_what_exact_search_finds():
-    # The IVF path (forced with exact_max=0) against numpy brute force on 12 000 vectors.
+    # The IVF path (forced with exact_max=0) against numpy brute force on 11 000 vectors.
     x, _ = planted(11_000, 96, 1000, seed=1)
     truth = brute_force_pairs(x, 0.9)
     a, b, s, c = dup.candidate_pairs(x, 0.9, exact_max=0)
@@ -351,6 +354,8 @@ def test_background_matches_a_numpy_reference():
     others = np.sort(s, axis=1)[:, :-1]  # NaN sorts last
     top = others[:, -dup.BACKGROUND_RANK]
     med = np.median(others, axis=1)
+    # 1.4826 = 1 / Phi^-1(3/4): scales the MAD to a standard deviation for normal data (Rousseeuw and
+    # Croux, JASA 1993; from memory).
     mad = 1.4826 * np.median(np.abs(others - med[:, None]), axis=1)
     assert np.allclose(dup.background(x), np.minimum(top, med + dup.BACKGROUND_CEILING_MADS * mad), atol=1e-5)
 
