@@ -46,7 +46,8 @@ def _print_moves(report: dict, err: bool) -> None:
     if not files:
         click.echo("Nothing to move: no group has a non-keeper.", err=err)
         return
-    verb = {"planned": "would move", "moved": "moved", "skipped": "skipped", "not moved": "not moved"}
+    verb = {"planned": "would move", "moved": "moved", "skipped": "skipped", "not moved": "not moved",
+            "moving": "cut short"}
     for f in files:
         line = f"{verb[f['status']]:<10} {f['original']} -> {f['quarantined']}"
         click.echo(line + (f"  ({f['reason']})" if f["reason"] else ""), err=err)

@@ -50,11 +50,12 @@ def create_exclusive(folder: str, stem: str, suffixes: tuple[str, ...]) -> tuple
             for suffix in suffixes:
                 fds.append(os.open(base + suffix, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644))
             return base, fds
-        except FileExistsError:
+        except OSError as exc:
             for fd, suffix in zip(fds, suffixes):  # only the files this attempt created
                 os.close(fd)
                 os.unlink(base + suffix)
-            continue
+            if not isinstance(exc, FileExistsError):
+                raise
     raise FileExistsError(errno.EEXIST, "no free manifest name", folder)
 
 
@@ -71,7 +72,8 @@ class Journal:
 
     @staticmethod
     def reservation(entries: list[dict]) -> int:
-        paths = sum(len(e["original"].encode()) + len(e["quarantined"].encode()) for e in entries)
+        paths = sum(len(e["original"].encode()) + len(e["quarantined"].encode()) + len(str(e.get("keeper")).encode())
+                    for e in entries)  # a "skipped" record's reason may name the keeper
         return 2 * paths + 3 * RECORD_BYTES * (len(entries) + 2) + 4096
 
     def write(self, record: dict) -> None:

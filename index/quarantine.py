@@ -177,13 +177,15 @@ class _Run:
         self.final_fd = fds[2]
         manifest["journal"] = os.path.basename(self.journal_path)
         try:
-            os.write(fds[0], _json(manifest))
-            os.fsync(fds[0])
-            os.close(fds[0])
+            try:
+                os.write(fds[0], _json(manifest))
+                os.fsync(fds[0])
+            finally:
+                os.close(fds[0])
             reserve(fds[1], journal_bytes)
             reserve(fds[2], final_bytes)
             fsync_dir(dest)
-        except OSError:
+        except OSError:  # nothing has moved: take this run's files back and say why
             for fd in fds[1:]:
                 os.close(fd)
             for p in (self.path, self.journal_path, self.final_path):
@@ -244,6 +246,8 @@ def _move_one(n: int, entry: dict, run: _Run, hashes: dict) -> None:
             return skip("something already exists at the quarantine path")
         run.journal.write({"n": n, "step": "moving", "original": entry["original"],
                            "quarantined": entry["quarantined"], "sha256": current})
+        entry.update(status="moving", reason="the run stopped while moving this file; restore looks for it in "
+                                             "both places")
         os.rename(entry["original"], entry["quarantined"])
     except OSError as exc:
         skip(f"could not move: {exc.strerror or exc}")

@@ -136,6 +136,18 @@ def test_keeper_rule_in_the_archive(dup_archive):
     assert doc["rules"]["keeper"] == dup.KEEPER_RULE and "--prefer" in doc["rules"]["keeper"]
 
 
+def test_prefer_folders_decide_the_keeper_from_the_command_line(dup_archive):
+    archive, root, db = dup_archive
+    res = CliRunner().invoke(main, ["duplicates", "--db", str(db), "-q", "--prefer", str(root / "exports" / "web")])
+    assert res.exit_code == 0, res.output
+    doc = json.loads(res.stdout)
+    astronaut = next(g for g in doc["groups"] if source_of(g["members"][0]["path"]) == "astronaut")
+    keeper = next(m for m in astronaut["members"] if m["id"] == astronaut["keeper"])
+    assert keeper["path"] == str(root / "exports" / "web" / "astronaut-small.jpg")  # the user's word wins
+    assert astronaut["keeper_reason"] == "in a folder given with --prefer"
+    assert doc["rules"]["keeper"].endswith(f"Preferred folders: {root / 'exports' / 'web'}.")
+
+
 def test_member_scores_and_pairs_are_cosines_of_the_stored_descriptors(dup_archive):
     # Reference: numpy dot products of the stored L2-normalised descriptors (cosine similarity).
     archive, _, _ = dup_archive
