@@ -24,7 +24,7 @@ PADDING_TOLERANCE = 0.04  # padding fractions within 4% of the frame are equal
 QUALITY_TOLERANCE = 3.0  # JPEG-equivalent qualities within 3 points are equal
 SHARPNESS_TOLERANCE = 1.3  # detail per pixel within a factor 1.3 is equal
 TONES_TOLERANCE = 4.0  # grey levels: distances to the group's median tones within 4 levels are equal
-MTIME_TOLERANCE = 2.0  # seconds (FAT keeps modification times to 2 s)
+MTIME_TOLERANCE = 0.0  # seconds: any difference counts (a copy made by a program is newer, however little)
 
 RULE = (
     "never a missing file, a symbolic link or a file changed since indexing; then the folders given with "

@@ -23,8 +23,11 @@ class SpaceError(OSError):
 
 def reserve(fd: int, size: int) -> None:
     """Make `size` bytes of the file take real blocks now (zeros), so later writes cannot fail for space."""
+    fallocate = getattr(os, "posix_fallocate", None)  # not on macOS
     try:
-        os.posix_fallocate(fd, 0, size)
+        if fallocate is None:
+            raise OSError(errno.ENOSYS, "no posix_fallocate")
+        fallocate(fd, 0, size)
     except OSError as exc:
         if exc.errno not in (errno.EOPNOTSUPP, errno.EINVAL, errno.ENOSYS):
             raise
@@ -79,7 +82,7 @@ class Journal:
     def write(self, record: dict) -> None:
         line = (json.dumps(record, separators=(",", ":")) + "\n").encode()
         os.pwrite(self.fd, line, self.offset)
-        os.fdatasync(self.fd)
+        getattr(os, "fdatasync", os.fsync)(self.fd)  # fdatasync is not on macOS
         self.offset += len(line)
 
     def close(self) -> None:
