@@ -383,8 +383,6 @@ def test_exclusive_names_never_reuse_a_taken_name(tmp_path):
 
 
 def test_an_unwritable_output_is_refused_before_anything_moves(tmp_path):
-    from tests.test_duplicates import make_folder  # noqa: F401  (same archive shape as the other tests)
-
     runner = CliRunner()
     res = runner.invoke(main, ["duplicates", "--db", str(tmp_path), "--move-to", str(tmp_path / "q"), "--apply",
                                "--output", str(tmp_path / "no-such-folder" / "out.json")])
