@@ -725,12 +725,14 @@ class Archive:
 
     # --- duplicates -------------------------------------------------------------------------
     def duplicates(self, *, layer: str | None = None, threshold: float | None = None, normalised: bool = True,
-                   progress: bool = False) -> dict:
-        """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md."""
+                   progress: bool = False, prefer: list[str] | None = None) -> dict:
+        """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md.
+        `prefer`: folders whose members the keeper rule prefers, in order."""
         from . import duplicates as dup
 
         try:
-            return dup.from_archive(self, layer=layer, threshold=threshold, normalised=normalised, progress=progress)
+            return dup.from_archive(self, layer=layer, threshold=threshold, normalised=normalised, progress=progress,
+                                    prefer=prefer)
         except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
 

@@ -9,7 +9,7 @@ import sys
 import click
 
 from .api import Archive, ArchiveError
-from .quarantine import QuarantineError, indexed_roots, move, restore
+from .quarantine import QuarantineError, QuarantineStopped, indexed_roots, move, restore
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
 CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
@@ -46,16 +46,33 @@ def _print_moves(report: dict, err: bool) -> None:
     if not files:
         click.echo("Nothing to move: no group has a non-keeper.", err=err)
         return
-    verb = {"planned": "would move", "moved": "moved", "skipped": "skipped"}
+    verb = {"planned": "would move", "moved": "moved", "skipped": "skipped", "not moved": "not moved",
+            "moving": "cut short"}
     for f in files:
         line = f"{verb[f['status']]:<10} {f['original']} -> {f['quarantined']}"
         click.echo(line + (f"  ({f['reason']})" if f["reason"] else ""), err=err)
-    if report["apply"]:
+    planned = sum(f["status"] == "planned" for f in files)
+    if not report["apply"]:
+        click.echo(f"Dry run: nothing was moved ({planned} of {len(files)} files would move). "
+                   "Add --apply to move them.", err=err)
+    elif report["manifest"]:
         moved = sum(f["status"] == "moved" for f in files)
         click.echo(f"{moved} of {len(files)} files moved; manifest: {report['manifest']}", err=err)
+        if report.get("manifest_note"):
+            click.echo(f"The manifest's final copy could not be written ({report['manifest_note']}); the journal "
+                       "beside it records every move, and restore reads it.", err=err)
         click.echo(f"Undo with: kinscope restore {report['manifest']} --apply", err=err)
     else:
-        click.echo(f"Dry run: nothing was moved ({len(files)} files planned). Add --apply to move them.", err=err)
+        click.echo("Nothing was moved: no file could be moved safely (reasons above).", err=err)
+
+
+def _check_writable(path: str) -> None:
+    """Refuse an --output file that cannot be written, before anything moves (its contents are kept)."""
+    try:
+        with open(path, "a", encoding="utf-8"):
+            pass
+    except OSError as exc:
+        _fail(f"cannot write {path}: {exc.strerror or exc}; nothing was moved")
 
 
 @click.command("duplicates")
@@ -72,14 +89,19 @@ def _print_moves(report: dict, err: bool) -> None:
 @click.option("--move-to", type=click.Path(file_okay=False),
               help="Quarantine folder (outside every indexed folder) for the non-keepers; a dry run unless --apply.")
 @click.option("--apply", is_flag=True, help="With --move-to: really move the files and write the manifest.")
+@click.option("--prefer", multiple=True, type=click.Path(file_okay=False),
+              help="A folder whose copies the keeper rule prefers (repeatable; the first given wins).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar and no summary line.")
-def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, quiet):
+def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, prefer, quiet):
     """Find exact and near duplicate groups; print them as JSON or CSV. Never deletes anything."""
     if apply and not move_to:
         _fail("--apply only goes with --move-to DIR")
+    if apply and output:
+        _check_writable(output)
     try:
         with Archive.open(db) as archive:
-            doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet)
+            doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet,
+                                     prefer=list(prefer))
             roots = indexed_roots(archive) if move_to else []
     except ArchiveError as exc:
         _fail(exc)
@@ -91,11 +113,15 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
         except OSError as exc:
             _fail(f"cannot write the report {report_path}: {exc.strerror or exc}")
     on_stdout = output is None
+    stopped = None
     if move_to:
         try:
             doc["quarantine"] = move(doc, move_to, roots, db=str(db), apply=apply)
+        except QuarantineStopped as exc:
+            doc["quarantine"], stopped = exc.report, exc
         except QuarantineError as exc:
             _fail(exc)
+        _print_moves(doc["quarantine"], err=on_stdout)  # before the output: what moved is said whatever follows
     text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else to_csv(doc)
     if on_stdout:
         click.echo(text, nl=False)
@@ -104,9 +130,11 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
             with open(output, "w", encoding="utf-8", newline="") as fh:
                 fh.write(text)
         except OSError as exc:
-            _fail(f"cannot write {output}: {exc.strerror or exc}")
-    if move_to:
-        _print_moves(doc["quarantine"], err=on_stdout)
+            moved = (doc.get("quarantine") or {}).get("manifest")
+            _fail(f"cannot write {output}: {exc.strerror or exc}"
+                  + (f"; the moves above were made, undo them with: kinscope restore {moved} --apply" if moved else ""))
+    if stopped:
+        _fail(stopped)
     if not quiet:
         click.echo(_summary(doc) + (f" Written to {output}." if output else "")
                    + (f" Review page: {report_path}." if report_path else ""), err=on_stdout)
@@ -125,9 +153,13 @@ def restore_cmd(manifest, apply, as_json):
     if as_json:
         click.echo(json.dumps(report, indent=2))
     else:
+        for problem in report["problems"]:
+            click.echo(f"note: {problem}")
         for f in report["files"]:
             line = f"{f['status']:<16} {f['quarantined']} -> {f['original']}"
             click.echo(line + (f"  ({f['reason']})" if f["reason"] else ""))
+        if not report["files"]:
+            click.echo("Nothing to restore: the manifest records no moved file.")
         if not apply:
             click.echo("Dry run: nothing was moved. Add --apply to restore.")
     refused = sum(f["status"] == "refused" for f in report["files"])

@@ -1,14 +1,17 @@
 """Near-duplicate detection: exact copies by content hash, near copies by descriptor similarity.
 
 Plain functions over numpy arrays (shapes checked), plus `from_archive`, which pulls ids, descriptors
-and catalog rows out of an Archive. Nothing here reads, moves or deletes image files.
-The rules (grouping, keeper, normalisation) and the calibration are explained in docs/duplicates.md.
+and catalog rows out of an Archive. Nothing here moves or deletes image files; the keeper rule
+(index/keeper.py) examines the files of group members only. The rules (grouping, keeper,
+normalisation) and the calibration are explained in docs/duplicates.md.
 """
 from __future__ import annotations
 
 import os
 
 import numpy as np
+
+from . import keeper as keeper_rule
 
 # --- calibrated defaults: measured with scripts/bench_duplicates.py, table in docs/duplicates.md -----------
 DEFAULT_LAYER = "objects"
@@ -34,7 +37,7 @@ PCA_SAMPLE = 10_000  # rows the projection is learned from
 PAIRS_MAX_MEMBERS = 64  # groups larger than this (only exact ones can be) list no pairwise scores
 CHUNK = 4096  # queries per search call (progress granularity and memory bound)
 
-KEEPER_RULE = "largest pixel count, then oldest modification time, then shortest path"
+KEEPER_RULE = keeper_rule.RULE
 EXACT_RULE = "exact: files with the same SHA-256 content hash (byte-identical)"
 NEAR_RULE = (
     "near: star groups. Items are taken as centres in order of how many neighbours score at or above the "
@@ -245,31 +248,18 @@ def star_groups(n: int, i: np.ndarray, j: np.ndarray, s: np.ndarray) -> list[tup
     return groups
 
 
-def keeper_key(row: dict) -> tuple:
-    """Sort key of the keeper rule: largest pixel count, then oldest mtime, then shortest path."""
-    pixels = (row.get("width") or 0) * (row.get("height") or 0)
-    mtime = row.get("mtime")
-    return (-pixels, mtime if mtime is not None else float("inf"), len(row["path"]), row["path"])
+def choose_keeper(rows: list[dict], *, rule: keeper_rule.KeeperRule | None = None, pixels: bool = True) -> int:
+    """Index into `rows` of the item the keeper rule keeps (index/keeper.py; reads the members' files)."""
+    return (rule or keeper_rule.KeeperRule()).choose(rows, pixels=pixels)[0]
 
 
-def choose_keeper(rows: list[dict]) -> int:
-    """Index into `rows` of the item the keeper rule keeps."""
-    return min(range(len(rows)), key=lambda r: keeper_key(rows[r]))
-
-
-def keeper_reason(rows: list[dict], keep: int) -> str:
-    """Which step of the keeper rule decided, against the runner-up."""
-    others = [r for n, r in enumerate(rows) if n != keep]
-    if not others:
-        return "only member"
-    k, runner = keeper_key(rows[keep]), min(keeper_key(r) for r in others)
-    if k[0] != runner[0]:
-        return "largest pixel count"
-    if k[1] != runner[1]:
-        return "same pixel count; oldest modification time"
-    if k[2] != runner[2]:
-        return "same pixel count and modification time; shortest path"
-    return "equal on every rule; first path in alphabetical order"
+def keeper_reason(rows: list[dict], keep: int | None = None, *, rule: keeper_rule.KeeperRule | None = None,
+                  pixels: bool = True) -> str:
+    """Why the rule's keeper won: the step that decided, against the member(s) that step set aside.
+    `keep` (optional) must be the rule's choice; it is checked."""
+    chosen, reason, _ = (rule or keeper_rule.KeeperRule()).choose(rows, pixels=pixels)
+    assert keep is None or keep == chosen, f"the keeper rule chooses {chosen}, not {keep}"
+    return reason
 
 
 def exact_groups(hashes: list[str | None]) -> list[list[int]]:
@@ -284,11 +274,14 @@ def exact_groups(hashes: list[str | None]) -> list[list[int]]:
 # --- the job ---------------------------------------------------------------------------------------------
 def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: float = DEFAULT_THRESHOLD,
          normalised: bool = True, min_cosine: float | None = None, k: int = NEIGHBOURS,
-         exact_max: int = EXACT_SEARCH_MAX, progress: bool = False, layer: str | None = None) -> dict:
+         exact_max: int = EXACT_SEARCH_MAX, progress: bool = False, layer: str | None = None,
+         prefer: list[str] | None = None) -> dict:
     """Group ids by content hash and by descriptor similarity; returns the document of groups.
 
-    ids (n,), vectors (n, d) L2-normalised, rows: n dicts with path, width, height, mtime, size, sha256.
+    ids (n,), vectors (n, d) L2-normalised, rows: n dicts with path, width, height, mtime, size, sha256
+    (and captured_at). `prefer`: folders whose members the keeper rule prefers, in order.
     """
+    rule = keeper_rule.KeeperRule(prefer)
     n, d = vectors.shape
     assert ids.shape == (n,), f"expected {n} ids, got shape {ids.shape}"
     assert len(rows) == n, f"expected {n} rows, got {len(rows)}"
@@ -300,11 +293,12 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
     exact = exact_groups([r.get("sha256") for r in rows])
     representative = np.ones(n, bool)
     exact_of: dict[int, int] = {}  # position of an exact keeper -> index of its group in `groups`
-    for positions in exact:
-        keep = positions[choose_keeper([rows[p] for p in positions])]
+    for positions in exact:  # byte-identical: the pixels are the same, only the files' standing differs
+        keep, why, ev = rule.choose([rows[p] for p in positions], pixels=False)
+        keep = positions[keep]
         representative[[p for p in positions if p != keep]] = False
         exact_of[keep] = len(groups)
-        groups.append(_group("exact", keep, keep, positions, ids, vectors, rows, None))
+        groups.append(_group("exact", keep, keep, positions, ids, vectors, rows, None, why, ev))
 
     reps = np.flatnonzero(representative)
     x = _f32(vectors[reps])
@@ -318,8 +312,9 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
                                      min_cosine=-1.0 if min_cosine is None else min_cosine, progress=progress)
         for centre, members in star_groups(len(reps), a, b, s):
             positions = reps[members].tolist()
-            keep = positions[choose_keeper([rows[p] for p in positions])]
-            groups.append(_group("near", keep, int(reps[centre]), positions, ids, vectors, rows, bg))
+            keep, why, ev = rule.choose([rows[p] for p in positions], pixels=True)
+            keep = positions[keep]
+            groups.append(_group("near", keep, int(reps[centre]), positions, ids, vectors, rows, bg, why, ev))
     for g in groups:  # tie a near group to the exact groups of its members
         if g["kind"] == "near":
             for m in g["members"]:
@@ -344,7 +339,7 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
         "score": "normalised" if normalised else "cosine",
         "threshold": float(threshold),
         "min_cosine": None if min_cosine is None else float(min_cosine),
-        "rules": {"exact": EXACT_RULE, "near": NEAR_RULE, "keeper": KEEPER_RULE,
+        "rules": {"exact": EXACT_RULE, "near": NEAR_RULE, "keeper": rule.text,
                   "score": (NORMALISATION_RULE if normalised else "score = cosine similarity of the descriptors")
                   + (f"; a near pair must also have cosine >= {min_cosine:g}" if min_cosine is not None else "")},
         "counts": {"images": int(n), "groups": len(out), "exact": sum(g["kind"] == "exact" for g in out),
@@ -353,8 +348,10 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
     }
 
 
-def _group(kind, keep, centre, positions, ids, vectors, rows, bg) -> dict:
-    """One group's record; member scores are against the keeper, `pairs` lists every pair."""
+def _group(kind, keep, centre, positions, ids, vectors, rows, bg, reason, evidence) -> dict:
+    """One group's record; member scores are against the keeper, `pairs` lists every pair, and each
+    member carries the keeper rule's evidence about it (`evidence`: in the order of `positions`)."""
+    evidence_of = dict(zip(positions, evidence))
     keep_first = [keep] + sorted((p for p in positions if p != keep), key=lambda p: rows[p]["path"])
     v = vectors[keep_first]
     cos = np.clip(v @ v.T, -1.0, 1.0)
@@ -370,20 +367,19 @@ def _group(kind, keep, centre, positions, ids, vectors, rows, bg) -> dict:
                         "cosine": round(1.0 if kind == "exact" else float(cos[0, r]), 4),
                         "width": rows[p].get("width"), "height": rows[p].get("height"),
                         "size": rows[p].get("size"), "mtime": rows[p].get("mtime"), "sha256": rows[p].get("sha256"),
-                        "_pos": p})
+                        "evidence": evidence_of[p].as_dict(), "_pos": p})
     pairs = None
     if len(keep_first) <= PAIRS_MAX_MEMBERS:
         pairs = [{"a": int(ids[keep_first[x]]), "b": int(ids[keep_first[y]]),
                   "score": 1.0 if kind == "exact" else round(float(used[x, y]), 4),
                   "cosine": 1.0 if kind == "exact" else round(float(cos[x, y]), 4)}
                  for x in range(len(keep_first)) for y in range(x + 1, len(keep_first))]
-    reason = keeper_reason([rows[p] for p in keep_first], 0)
     return {"id": None, "kind": kind, "keeper": int(ids[keep]), "keeper_reason": reason, "centre": int(ids[centre]),
             "members": members, "pairs": pairs}
 
 
 # --- the Archive side ------------------------------------------------------------------------------------
-ROW_COLUMNS = ("id", "path", "width", "height", "mtime", "size", "sha256")
+ROW_COLUMNS = ("id", "path", "width", "height", "mtime", "size", "sha256", "captured_at")
 
 
 def all_vectors(store) -> tuple[np.ndarray, np.ndarray]:
@@ -435,7 +431,7 @@ def resolve_settings(archive, layer: str | None, threshold: float | None,
 
 
 def from_archive(archive, *, layer: str | None = None, threshold: float | None = None,
-                 normalised: bool = True, progress: bool = False) -> dict:
+                 normalised: bool = True, progress: bool = False, prefer: list[str] | None = None) -> dict:
     """Run the job over every embedded item of an Archive on one layer."""
     layer, threshold, floor = resolve_settings(archive, layer, threshold, normalised)
     stored_ids, vectors = all_vectors(archive.store(layer))
@@ -445,6 +441,6 @@ def from_archive(archive, *, layer: str | None = None, threshold: float | None =
     order = np.flatnonzero(keep)[np.argsort(stored_ids[keep], kind="stable")]  # catalog order: deterministic
     ids, vectors = stored_ids[order], vectors[order]
     doc = find(ids, vectors, [rows[int(i)] for i in ids], threshold=threshold, normalised=normalised,
-               min_cosine=floor, progress=progress, layer=layer)
+               min_cosine=floor, progress=progress, layer=layer, prefer=prefer)
     doc["db"] = str(archive.db)
     return doc

@@ -118,31 +118,34 @@ def test_different_images_are_not_grouped(dup_archive):
     assert doc["counts"]["images_in_groups"] == 6
 
 
-def test_keeper_rule_on_rows():
-    rows = [
-        {"path": "/a/long/path/big.jpg", "width": 2000, "height": 1000, "mtime": 50.0},
-        {"path": "/a/small.jpg", "width": 1000, "height": 1000, "mtime": 1.0},
-    ]
-    assert dup.choose_keeper(rows) == 0  # largest pixel count wins over age and path
-    rows[1]["width"] = 2000
-    assert dup.choose_keeper(rows) == 1  # same pixel count: oldest modification time
-    rows[1]["mtime"] = 50.0
-    assert dup.choose_keeper(rows) == 1  # same pixels and time: shortest path
-    assert dup.keeper_reason(rows, 1) == "same pixel count and modification time; shortest path"
-
-
 def test_keeper_rule_in_the_archive(dup_archive):
     archive, root, _ = dup_archive
     doc = archive.duplicates()
     for g in doc["groups"]:
         keeper = next(m for m in g["members"] if m["id"] == g["keeper"])
-        if g["kind"] == "exact":  # same pixels; the copy in exports/ has the older modification time
+        if g["kind"] == "exact":  # same bytes; the copy in exports/ has the older modification time
             assert keeper["path"] == str(root / "exports" / "coffee-copy.png")
-            assert g["keeper_reason"] == "same pixel count; oldest modification time"
-        elif source_of(keeper["path"]) == "astronaut":  # the original has four times the pixels
+            assert g["keeper_reason"] == "equal on the picture's evidence; oldest modification time"
+        elif source_of(keeper["path"]) == "astronaut":  # the original has four times the pixels and the detail
             assert keeper["path"] == str(root / "scans" / "astronaut.png")
-            assert g["keeper_reason"] == "largest pixel count"
-    assert "largest pixel count, then oldest modification time, then shortest path" == doc["rules"]["keeper"]
+            assert g["keeper_reason"].startswith("largest effective resolution (262,144 pixels of picture against")
+        else:  # chelsea: same size, but the copy was brightened and saved as JPEG quality 90; the original is PNG
+            assert keeper["path"] == str(root / "scans" / "chelsea.png")
+            assert "lighter compression (quality 100 against 90)" in g["keeper_reason"]
+        assert all("evidence" in m and m["evidence"]["eligible"] for m in g["members"])
+    assert doc["rules"]["keeper"] == dup.KEEPER_RULE and "--prefer" in doc["rules"]["keeper"]
+
+
+def test_prefer_folders_decide_the_keeper_from_the_command_line(dup_archive):
+    archive, root, db = dup_archive
+    res = CliRunner().invoke(main, ["duplicates", "--db", str(db), "-q", "--prefer", str(root / "exports" / "web")])
+    assert res.exit_code == 0, res.output
+    doc = json.loads(res.stdout)
+    astronaut = next(g for g in doc["groups"] if source_of(g["members"][0]["path"]) == "astronaut")
+    keeper = next(m for m in astronaut["members"] if m["id"] == astronaut["keeper"])
+    assert keeper["path"] == str(root / "exports" / "web" / "astronaut-small.jpg")  # the user's word wins
+    assert astronaut["keeper_reason"] == "in a folder given with --prefer"
+    assert doc["rules"]["keeper"].endswith(f"Preferred folders: {root / 'exports' / 'web'}.")
 
 
 def test_member_scores_and_pairs_are_cosines_of_the_stored_descriptors(dup_archive):
@@ -275,7 +278,10 @@ def test_move_and_restore_round_trip_leaves_every_file_byte_identical(small_arch
     restored = runner.invoke(main, ["restore", report["manifest"], "--apply"])
     assert restored.exit_code == 0, restored.output
     assert snapshot(root) == before  # every file back, byte-identical, with its modification time
-    assert [p.name for p in quarantine.rglob("*") if p.is_file()] == [os.path.basename(report["manifest"])]
+    # what is left in the quarantine: the manifest and its journal of the moves
+    journal = report["manifest"][:-len(".json")] + ".journal"
+    assert sorted(p.name for p in quarantine.rglob("*") if p.is_file()) == sorted(
+        [os.path.basename(report["manifest"]), os.path.basename(journal)])
     again = runner.invoke(main, ["restore", report["manifest"], "--apply"])
     assert again.exit_code == 0 and again.output.count("already in place") == 3
 
