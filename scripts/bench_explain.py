@@ -14,9 +14,10 @@ The old explanation is the exact split of the raw cosine with pairs as products 
 (index/explain.py before this benchmark; reproduced below). The new one is Archive.explain. Two other
 splits are printed to show why the product uses the one it does. Also: where channel exemplars sit.
 
-    PYTHONPATH=. .venv/bin/python scripts/bench_explain.py [--seed 0] [--crops 2]
+    PYTHONPATH=. .venv/bin/python scripts/bench_explain.py [--seed 0] [--crops 2] [--threads 1]
 
-Takes about 3 minutes on 2 cores. Figures, not assertions; see docs/explain.md.
+About 0.25 s of CPU per explanation with one torch thread: a few minutes in all. Figures, not
+assertions; see docs/explain.md.
 """
 from __future__ import annotations
 
@@ -173,12 +174,17 @@ def run(args) -> None:
     tmp = Path(tempfile.mkdtemp(prefix="bench-explain-"))
     started = time.time()
     archive, ids = build_archive(images, tmp / "archive", tmp / "db")
+    import torch
+
+    torch.set_num_threads(args.threads)  # on a busy machine two spinning threads cost more than they give
     p = archive.manifest["pooling"]["p"]
     cases = [(name, kind, copy, f) for name, image in images.items() for kind, copy, f in copies(image, rng, args.crops)]
     print(f"{len(images)} open images indexed; {len(cases)} copies "
-          f"({', '.join(sorted({k for _, k, _, _ in cases}))}); seed {args.seed}; load average {os.getloadavg()[0]:.2f}")
+          f"({', '.join(sorted({k for _, k, _, _ in cases}))}); seed {args.seed}; torch threads {args.threads}; "
+          f"load average {os.getloadavg()[0]:.2f}")
     tally, seconds = Tally(), {"old": 0.0, "new": 0.0}
     for layer in LAYERS:
+        print(f"explaining every copy on {layer} ...")
         node = archive._layer(layer)["node"]
         originals = archive.embedder.maps_at([archive.query_image(i) for i in ids.values()], (node,))[node]
         originals = dict(zip(ids, originals))
@@ -271,6 +277,8 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--crops", type=int, default=2, help="crops per image")
+    parser.add_argument("--threads", type=int, default=1, help="torch threads")
+    sys.stdout.reconfigure(line_buffering=True)
     run(parser.parse_args())
 
 
