@@ -16,7 +16,7 @@ from PIL import Image, ImageOps
 
 from .explain_baseline import Baseline
 from .explain_pairs import match_regions
-from .explain_score import MAX_MAP_SIDE, MODES, block_sum, cell_box, descriptor, shares, split  # noqa: F401
+from .explain_score import MAX_MAP_SIDE, MODES, block_sum, descriptor, split
 
 PAIR_PRESET = "texture"
 PAIRS = 8  # region pairs offered
@@ -111,7 +111,7 @@ def explain(archive, query, match: int, *, layer: str | None = None, box=None, m
     result["pairs"] = pairs_with_shares(regions, grid_q, grid_d, result["query_map"], result["match_map"],
                                         result["score"])
     result["pair_layer"] = {"name": _layer_name(archive, pair_node), "node": pair_node, "grid": list(grid_d),
-                            "mirrored": regions["mirrored"], "scale": regions["scale"],
+                            "mirrored": regions["mirrored"], "scale": round(regions["scale"], 3),
                             "agreeing": regions["agreeing"], "candidates": regions["candidates"]}
     _add_exemplars(archive, name, entry, result["channels"])
     result["query_map"] = np.round(result["query_map"], 7).tolist()

@@ -94,7 +94,3 @@ def split(fq: np.ndarray, fd: np.ndarray, p: float, mean: np.ndarray | None = No
     return {"score": float(contrib.sum()), "query_map": heat_q.reshape(hq, wq), "match_map": heat_d.reshape(hd, wd),
             "contrib": contrib, "cosine": float(q @ d)}
 
-
-def cell_box(r: int, c: int, rows: int, cols: int) -> list[float]:
-    """Grid cell -> [x0, y0, x1, y1] as fractions of the image (the network sees the whole frame)."""
-    return [round(c / cols, 4), round(r / rows, 4), round((c + 1) / cols, 4), round((r + 1) / rows, 4)]

@@ -316,7 +316,8 @@ export function renderExplanation(body, data, ctx) {
     ? "Cells below zero are left dark: there the image looks less like the other one than an average image does. " +
       "What every image of the archive has, the frame's edges included, adds almost nothing here."
     : "Cells along the frame's edges are often bright on the middle layers: the network reacts to the border " +
-      "of any picture, so bright edges alone say little about the content. The other choice above takes that away.";
+      "of any picture, so bright edges alone say little about the content." +
+      (data.centred === null || data.centred === undefined ? "" : " The other choice above takes that away.");
   const legend = el(
     "div",
     { class: "legend", id: "heat-legend" },
