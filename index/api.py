@@ -54,6 +54,7 @@ class Archive:
         self._writers: dict[str, LayerStore] = {}  # the indexer: appends in bounded memory
         self._whitening: dict[str, PCAWhitening] = {}
         self._exemplars: dict[str, Exemplars] = {}
+        self._explain_baseline = None  # index.explain_baseline.Baseline, made by the first explanation
 
     # --- opening ----------------------------------------------------------------------------
     @classmethod
@@ -653,32 +654,20 @@ class Archive:
             q["box"] = list(box)
         return {"query": q, "layer": name, "offset": int(offset), "more": more, "results": results}
 
-    def explain(self, query, match: int, *, layer: str | None = None, box=None) -> dict:
-        """Why `match` (an id) is similar to the query: heat maps that sum to the score, region pairs,
-        and the channels that carried the score with the archive patches that excite them most."""
-        entry = self._layer(layer)
-        name = entry["name"]
-        if self.whitening(name):
-            raise ArchiveError(f"layer {name} is PCA-whitened; its scores do not split over positions")
-        from .explain import descriptor, explain_pair, patch_box
+    def explain(self, query, match: int, *, layer: str | None = None, box=None, mode: str = "centred") -> dict:
+        """Why `match` (an id) is similar to the query: heat maps that add up to a score, region pairs,
+        and the channels that carried the score with the archive patches that excite them most.
 
-        row = self.item(int(match))
-        query_maps = self.embedder.maps_of_image(self.query_image(query, box))[name]
-        match_maps = self.embedder.maps_of_image(self.query_image(int(match)))[name]
-        result = explain_pair(query_maps, match_maps, self.manifest["pooling"]["p"])
-        stored = self.store(name).reconstruct(np.array([int(match)]))[0]
-        result["indexed_score"] = float(descriptor(query_maps, self.manifest["pooling"]["p"]) @ stored)
-        alive = set(self.catalog.get(
-            [e["id"] for c in result["channels"] for e in self.exemplars(name).top(c["channel"])]))
-        rows, cols = self.exemplars(name).grid
-        for c in result["channels"]:
-            c["exemplars"] = [
-                {**e, "box": patch_box(*e["cell"], rows, cols, entry["stride"], self.backbone.input_size)}
-                for e in self.exemplars(name).top(c["channel"], alive)[:4]
-            ]
-        result["query_map"] = np.round(result["query_map"], 7).tolist()
-        result["match_map"] = np.round(result["match_map"], 7).tolist()
-        return {"layer": name, "match": {k: row[k] for k in ("id", "path", "width", "height")}, **result}
+        mode "centred" (default) splits the cosine of the descriptors centred on the archive's mean
+        descriptor (what the two share that other images of the archive do not); "cosine" splits the
+        raw cosine, the search score. Formulas in index.explain_score; see docs/explain.md.
+        """
+        from .explain import ExplainError, explain
+
+        try:
+            return explain(self, query, match, layer=layer, box=box, mode=mode)
+        except ExplainError as exc:
+            raise ArchiveError(str(exc)) from None
 
     # --- items and images -------------------------------------------------------------------
     def item(self, item_id: int) -> dict:

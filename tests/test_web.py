@@ -43,8 +43,13 @@ def test_upload_then_search_then_explain(client, sample_images):
     ex = c.get(f"/api/explain?upload={token}&match={first['id']}&layer=objects").get_json()
     assert np.sum(ex["query_map"]) == pytest.approx(ex["score"], abs=1e-4)
     assert np.sum(ex["match_map"]) == pytest.approx(ex["score"], abs=1e-4)
-    assert ex["score"] == pytest.approx(first["score"], abs=1e-4)
-    assert ex["channels"] and ex["pairs"]
+    assert ex["mode"] == "centred" and ex["cosine"] == pytest.approx(first["score"], abs=1e-4)
+    assert ex["channels"] and ex["pairs"] and ex["pair_layer"]["name"] == "texture"
+    raw = c.get(f"/api/explain?upload={token}&match={first['id']}&layer=objects&mode=cosine").get_json()
+    assert raw["mode"] == "cosine" and raw["score"] == pytest.approx(first["score"], abs=1e-4)
+    assert np.sum(raw["query_map"]) == pytest.approx(first["score"], abs=1e-4)
+    bad = c.get(f"/api/explain?upload={token}&match={first['id']}&mode=whitened")
+    assert bad.status_code == 400 and "mode must be one of" in bad.get_json()["error"]
     patch = ex["channels"][0]["exemplars"][0]["patch"]
     assert c.get(patch).mimetype == "image/jpeg"
 
