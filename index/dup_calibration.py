@@ -7,7 +7,7 @@ from __future__ import annotations
 
 DEFAULT_LAYER = "objects"
 # Normalised score (dup_background.normalise) at which two items count as near duplicates, per preset layer.
-DEFAULT_THRESHOLDS = {"objects": 0.25, "parts": 0.06}
+DEFAULT_THRESHOLDS = {"objects": 0.24, "parts": 0.06}
 DEFAULT_THRESHOLD = DEFAULT_THRESHOLDS[DEFAULT_LAYER]
 # Raw cosine a pair must also reach with the normalised score: in a small archive the background is
 # estimated from few items and runs low; this floor cost no recall on the benchmark's standard families.

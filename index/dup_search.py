@@ -16,7 +16,7 @@ NEIGHBOURS = 32  # candidate neighbours per item; a star group holds at most NEI
 EXACT_SEARCH_MAX = 5_000  # up to this many items: exact inner-product search; above: IVF (approximate)
 IVF_TRAIN_PER_LIST = 40  # k-means training points per inverted list (2 sqrt(n) lists)
 IVF_NPROBE = 8  # inverted lists visited per query
-PCA_DIM = 64  # above EXACT_SEARCH_MAX the candidate search runs on a PCA projection; final scores are exact
+PCA_DIM = 128  # above EXACT_SEARCH_MAX the candidate search runs on a PCA projection; final scores are exact
 PCA_SAMPLE = 10_000  # rows the projection is learned from
 CHUNK = 4096  # queries per search call (progress granularity and memory bound)
 
