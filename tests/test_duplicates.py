@@ -20,6 +20,7 @@ import pytest
 from click.testing import CliRunner
 from PIL import Image, ImageEnhance
 
+from index import dup_background
 from index import duplicates as dup
 from index.api import Archive, ArchiveError
 from index.cli import main
@@ -342,7 +343,8 @@ def test_star_groups_do_not_chain_a_series_of_links():
     assert not any({0, 5} <= set(m.tolist()) for _, m in groups)
 
 
-def reference_background(x: np.ndarray, rank: int, excluded: set[tuple[int, int]] = frozenset()) -> np.ndarray:
+def reference_background(x: np.ndarray, rank: int, excluded: set[tuple[int, int]] = frozenset(),
+                         cap: float | None = None) -> np.ndarray:
     # Reference: numpy sort and median over every row of x @ x.T (the whole set is the sample here), with the
     # item itself and its excluded partners replaced by the row's median, as docs/duplicates.md defines it.
     s = x @ x.T
@@ -354,7 +356,7 @@ def reference_background(x: np.ndarray, rank: int, excluded: set[tuple[int, int]
         top = np.sort(row)[-rank]
         med = np.median(row)
         mad = 1.4826 * np.median(np.abs(row - med))
-        out[i] = min(top, med + dup.BACKGROUND_CEILING_MADS * mad)
+        out[i] = top if cap is None else min(top, med + cap * mad)
     return out
 
 
@@ -365,6 +367,19 @@ def test_background_matches_a_numpy_reference():
     excluded = {(0, 5), (7, 0), (3, 4)}
     got = dup.background(x, exclude=(np.array([0, 7, 3]), np.array([5, 0, 4])))
     assert np.allclose(got, reference_background(x, dup.BACKGROUND_RANK, excluded), atol=1e-5)
+    capped = dup.background(x, ceiling_mads=2.0)  # the optional cap: median + 2 MAD
+    assert np.allclose(capped, reference_background(x, dup.BACKGROUND_RANK, cap=2.0), atol=1e-5)
+
+
+def test_the_local_background_is_the_kth_nearest_cosine():
+    # Reference: numpy sort of each row of x @ x.T over the k-NN pairs the candidate search returns.
+    rng = np.random.default_rng(5)
+    x = l2_normalize(np.abs(rng.normal(size=(300, 24)))).astype(np.float32)
+    a, b, _, cos = dup.candidate_pairs(x, -1.0, min_cosine=-1.0)
+    got = dup_background.kth_similarity(len(x), a, b, cos, 5)
+    s = x @ x.T
+    np.fill_diagonal(s, -np.inf)
+    assert np.allclose(got, np.sort(s, axis=1)[:, -5], atol=1e-5)
 
 
 def many_copies(n_other: int = 270, copies: int = 30, seed: int = 4):
