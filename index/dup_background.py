@@ -121,27 +121,14 @@ def normalise(cosine: np.ndarray, background_a: np.ndarray, background_b: np.nda
     return (cosine - 0.5 * (background_a + background_b)).astype(np.float32)
 
 
-def kth_similarity(n: int, i: np.ndarray, j: np.ndarray, cos: np.ndarray, k: int = LOCAL_RANK) -> np.ndarray:
-    """(n,): each item's k-th highest cosine among the pairs it is in (-inf when it is in fewer than k)."""
-    item = np.concatenate([i, j])
-    c = np.concatenate([cos, cos]).astype(np.float32)
-    order = np.lexsort((-c, item))
-    item, c = item[order], c[order]
-    start = np.searchsorted(item, np.arange(n))
-    count = np.bincount(item, minlength=n)
-    out = np.full(n, -np.inf, np.float32)
-    has = count >= k
-    out[has] = c[start[has] + k - 1]
-    return out
-
-
-def screened(vectors: np.ndarray, i: np.ndarray, j: np.ndarray, cos: np.ndarray, *, seed: int = 0,
-             progress: bool = False) -> tuple[np.ndarray, int]:
-    """The background: the sampled one with each item's candidate copies screened out, raised to the item's
-    LOCAL_RANK-th nearest neighbour; returns it and the number of candidate-copy pairs.
-    (i, j, cos): each row's nearest neighbours with their cosine (from the candidate search, no floor)."""
+def screened(vectors: np.ndarray, i: np.ndarray, j: np.ndarray, cos: np.ndarray, local: np.ndarray, *,
+             seed: int = 0, progress: bool = False) -> tuple[np.ndarray, int]:
+    """The background: the sampled one with each item's candidate copies screened out, raised to `local`
+    (each item's LOCAL_RANK-th nearest similarity, from the candidate search); returns it and the number of
+    candidate-copy pairs. (i, j, cos): neighbour pairs with their cosine (from the candidate search)."""
     assert i.shape == j.shape == cos.shape, "pair arrays must have one shape"
+    assert local.shape == (len(vectors),), "one local background per row"
     deep = background(vectors, rank=SCREEN_RANK, seed=seed, progress=progress)
     copy = normalise(cos, deep[i], deep[j]) >= SCREEN_MARGIN
     sampled = background(vectors, exclude=(i[copy], j[copy]), seed=seed, progress=progress)
-    return np.maximum(sampled, kth_similarity(len(vectors), i, j, cos)), int(copy.sum())
+    return np.maximum(sampled, local), int(copy.sum())

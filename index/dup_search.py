@@ -56,7 +56,7 @@ def projection(vectors: np.ndarray, dim: int = PCA_DIM, *, seed: int = 0) -> np.
 
 def candidate_pairs(vectors: np.ndarray, threshold: float, bg: np.ndarray | None = None, *,
                     min_cosine: float = -1.0, k: int = NEIGHBOURS, exact_max: int = EXACT_SEARCH_MAX, seed: int = 0,
-                    progress: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+                    kth: int = 0, progress: bool = False) -> tuple[np.ndarray, ...]:
     """Pairs (i < j) among each row's k most similar rows whose score is >= threshold (and cosine >= min_cosine).
 
     vectors (n, d) are L2-normalised; score = cosine, or normalise(cosine, bg[i], bg[j]) when the
@@ -65,6 +65,8 @@ def candidate_pairs(vectors: np.ndarray, threshold: float, bg: np.ndarray | None
     FAISS IVF index over a PCA projection built for this job (approximate: a true neighbour can be
     missed); a candidate is then rescored exactly when the projection plus the Cauchy-Schwarz bound
     on the discarded part (|x.y - Px.Py| <= |x - Px| |y - Py|) could reach the threshold.
+    With kth > 0 a fifth array (n,) is returned: each row's kth-highest similarity to another row in its own
+    search results (exact up to `exact_max` rows, in the projection above; -inf when it has fewer).
     """
     import faiss
 
@@ -72,9 +74,10 @@ def candidate_pairs(vectors: np.ndarray, threshold: float, bg: np.ndarray | None
     if bg is not None:
         assert bg.shape == (n,), f"expected {n} background values, got {bg.shape}"
     k = int(min(k, n - 1))
+    local = np.full(n, -np.inf, np.float32)
     empty = (np.zeros(0, np.int64),) * 2 + (np.zeros(0, np.float32),) * 2
     if k <= 0:
-        return empty
+        return empty + ((local,) if kth else ())
     _threads()
     x = _f32(vectors)
     half_bg = np.zeros(n, np.float32) if bg is None else _f32(bg) / 2
@@ -97,6 +100,9 @@ def candidate_pairs(vectors: np.ndarray, threshold: float, bg: np.ndarray | None
         for start in range(0, n, CHUNK):
             rows = np.arange(start, min(start + CHUNK, n))
             approx, cand = index.search(y[rows], k + 1)
+            if kth:
+                others = np.where((cand >= 0) & (cand != rows[:, None]), approx, -np.inf)
+                local[rows] = -np.partition(-others, kth - 1, axis=1)[:, kth - 1] if kth <= k else -np.inf
             i = np.repeat(rows, cand.shape[1])
             j = cand.ravel()
             a = approx.ravel()
@@ -114,4 +120,5 @@ def candidate_pairs(vectors: np.ndarray, threshold: float, bg: np.ndarray | None
     i, j, s, c = (np.concatenate(v) for v in (out_i, out_j, out_s, out_c))
     a, b = np.minimum(i, j), np.maximum(i, j)
     _, first = np.unique(a * n + b, return_index=True)
-    return a[first], b[first], s[first].astype(np.float32), np.clip(c[first], -1, 1).astype(np.float32)
+    out = a[first], b[first], s[first].astype(np.float32), np.clip(c[first], -1, 1).astype(np.float32)
+    return out + ((local,) if kth else ())

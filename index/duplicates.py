@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from .dup_background import (BACKGROUND_CEILING_MADS, BACKGROUND_RANK, BACKGROUND_SAMPLE,  # noqa: F401 (re-exported)
-                             background, normalise, screened)
+                             LOCAL_RANK, background, normalise, screened)
 from .dup_background import RULE as NORMALISATION_RULE
 from .dup_calibration import record as calibration_record
 from .dup_calibration import CALIBRATED_FOR, DEFAULT_LAYER, DEFAULT_THRESHOLD, DEFAULT_THRESHOLDS, MIN_COSINE  # noqa: F401
@@ -41,8 +41,8 @@ def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True
                progress: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
     """Pairs (i < j) that count as near duplicates, their scores, and the background (None for raw cosine).
 
-    The neighbour search runs once; the background (dup_background.screened) is computed from those
-    neighbours, then each pair is scored against it and kept at or above the threshold and the cosine floor.
+    The neighbour search runs once at the cosine floor and also gives each item's LOCAL_RANK-th nearest
+    similarity; the background (dup_background.screened) is computed from those, then each pair is scored.
     """
     x = np.ascontiguousarray(vectors, dtype=np.float32)
     floor = -1.0 if min_cosine is None else float(min_cosine)
@@ -50,12 +50,11 @@ def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True
         a, b, s, _ = candidate_pairs(x, threshold, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
                                      progress=progress)
         return a, b, s, None
-    # every item's k nearest, whatever their cosine: the background needs its LOCAL_RANK-th nearest
-    a, b, _, cos = candidate_pairs(x, -1.0, None, min_cosine=-1.0, k=k, exact_max=exact_max, seed=seed,
-                                   progress=progress)
-    bg, _ = screened(x, a, b, cos, seed=seed, progress=progress)
+    a, b, _, cos, local = candidate_pairs(x, floor, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
+                                          kth=LOCAL_RANK, progress=progress)
+    bg, _ = screened(x, a, b, cos, local, seed=seed, progress=progress)
     s = normalise(cos, bg[a], bg[b])
-    keep = (s >= threshold) & (cos >= floor)
+    keep = s >= threshold
     return a[keep], b[keep], s[keep], bg
 
 

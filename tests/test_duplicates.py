@@ -20,7 +20,6 @@ import pytest
 from click.testing import CliRunner
 from PIL import Image, ImageEnhance
 
-from index import dup_background
 from index import duplicates as dup
 from index.api import Archive, ArchiveError
 from index.cli import main
@@ -372,14 +371,16 @@ def test_background_matches_a_numpy_reference():
 
 
 def test_the_local_background_is_the_kth_nearest_cosine():
-    # Reference: numpy sort of each row of x @ x.T over the k-NN pairs the candidate search returns.
-    rng = np.random.default_rng(5)
-    x = l2_normalize(np.abs(rng.normal(size=(300, 24)))).astype(np.float32)
-    a, b, _, cos = dup.candidate_pairs(x, -1.0, min_cosine=-1.0)
-    got = dup_background.kth_similarity(len(x), a, b, cos, 5)
+    # Reference: numpy sort of each row of x @ x.T (the k-th most similar other row), exact search path; the
+    # approximate path (projection) must come close to it.
+    x, _ = planted(3000, 48, 300, seed=5)
     s = x @ x.T
     np.fill_diagonal(s, -np.inf)
-    assert np.allclose(got, np.sort(s, axis=1)[:, -5], atol=1e-5)
+    truth = np.sort(s, axis=1)[:, -5]
+    exact = dup.candidate_pairs(x, 0.9, kth=5)[4]
+    assert np.allclose(exact, truth, atol=1e-5)
+    approx = dup.candidate_pairs(x, 0.9, kth=5, exact_max=0)[4]
+    assert np.median(np.abs(approx - truth)) < 0.02
 
 
 def many_copies(n_other: int = 270, copies: int = 30, seed: int = 4):
@@ -398,8 +399,8 @@ def test_an_items_own_copies_do_not_lift_its_background():
     copy_cos = x[270:] @ x[0]
     plain = dup.background(x, ceiling_mads=np.inf)
     assert plain[0] >= np.sort(copy_cos)[0]  # the unscreened rank statistic is a copy
-    a, b, _, cos = dup.candidate_pairs(x, 0.0, min_cosine=0.0)
-    bg, n_copies = dup.screened(x, a, b, cos)
+    a, b, _, cos, local = dup.candidate_pairs(x, 0.0, min_cosine=0.0, kth=dup.LOCAL_RANK)
+    bg, n_copies = dup.screened(x, a, b, cos, local)
     assert n_copies >= 30 * 31 // 2 * 0.9  # (almost) every pair among the 31 versions was screened
     others = bg[1:270]
     assert bg[0] <= np.quantile(others, 0.95) + 0.02
