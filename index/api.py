@@ -750,6 +750,17 @@ class Archive:
         except RootError as exc:
             raise ArchiveError(str(exc)) from None
 
+    def duplicate_plan(self, decisions: dict | None = None, *, text: str | None = None) -> dict:
+        """A review plan (index.dup_plan) from the review page's decisions, or from a plan file's text."""
+        from . import dup_plan
+
+        try:
+            if text is not None:
+                return dup_plan.plan_from_file(self, text)
+            return dup_plan.plan_from_decisions(self, decisions)
+        except dup_plan.PlanError as exc:
+            raise ArchiveError(str(exc)) from None
+
     # --- verification ---------------------------------------------------------------------
     def check(self) -> dict:
         """Verify catalog, stores, manifest and files; read-only. {'ok', 'checked', 'findings'}."""

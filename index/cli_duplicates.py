@@ -9,6 +9,7 @@ import sys
 import click
 
 from .api import Archive, ArchiveError
+from .dup_plan import to_csv as plan_csv
 from .quarantine import QuarantineError, QuarantineStopped, indexed_roots, move, restore
 
 DB_HELP = "Database folder of the archive (catalog, vector indexes, manifest)."
@@ -39,6 +40,12 @@ def _summary(doc: dict) -> str:
     return (f"{c['groups']} groups ({c['exact']} exact, {c['near']} near) holding {c['images_in_groups']} of "
             f"{c['images']} images; layer {doc['layer']}, {doc['score']} score >= {doc['threshold']:g}. "
             f"Suggested keeper: {doc['rules']['keeper']}.")
+
+
+def _plan_summary(doc: dict, path: str) -> str:
+    groups = doc["groups"]
+    excluded = sum(len(g["excluded"]) for g in groups)
+    return (f"Plan {path}: {len(groups)} groups reviewed, {excluded} files marked 'not a copy' (they stay).")
 
 
 def _print_moves(report: dict, err: bool) -> None:
@@ -75,6 +82,23 @@ def _check_writable(path: str) -> None:
         _fail(f"cannot write {path}: {exc.strerror or exc}; nothing was moved")
 
 
+def _explain(ctx, _param, value) -> None:
+    if not value or ctx.resilient_parsing:
+        return
+    from .dup_calibration import explain
+
+    click.echo(explain())
+    ctx.exit(0)
+
+
+def _read_text(path: str) -> str:
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return fh.read()
+    except (OSError, UnicodeDecodeError) as exc:
+        _fail(f"cannot read the plan {path}: {getattr(exc, 'strerror', None) or exc}")
+
+
 @click.command("duplicates")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--layer", help="Layer to compare on (default: objects, the one the benchmark calibrated).")
@@ -91,17 +115,29 @@ def _check_writable(path: str) -> None:
 @click.option("--apply", is_flag=True, help="With --move-to: really move the files and write the manifest.")
 @click.option("--prefer", multiple=True, type=click.Path(file_okay=False),
               help="A folder whose copies the keeper rule prefers (repeatable; the first given wins).")
+@click.option("--plan", "plan_path", type=click.Path(exists=True, dir_okay=False),
+              help="With --move-to: move what this review plan (JSON or CSV from the /duplicates page) says, "
+              "instead of the suggested keepers of a new run.")
+@click.option("--explain-threshold", is_flag=True, is_eager=True, expose_value=False, callback=_explain,
+              help="Print how the default thresholds were derived (which data, which rule) and exit.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar and no summary line.")
-def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, prefer, quiet):
+def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, prefer, plan_path, quiet):
     """Find exact and near duplicate groups; print them as JSON or CSV. Never deletes anything."""
     if apply and not move_to:
         _fail("--apply only goes with --move-to DIR")
+    if plan_path and not move_to:
+        _fail("--plan goes with --move-to DIR (add --apply to move the files)")
+    if plan_path and report_path:
+        _fail("--report goes with a new run, not with --plan (the plan was made on the review page)")
     if apply and output:
         _check_writable(output)
     try:
         with Archive.open(db) as archive:
-            doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet,
-                                     prefer=list(prefer))
+            if plan_path:
+                doc = archive.duplicate_plan(text=_read_text(plan_path))
+            else:
+                doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet,
+                                         prefer=list(prefer))
             roots = indexed_roots(archive) if move_to else []
     except ArchiveError as exc:
         _fail(exc)
@@ -122,7 +158,7 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
         except QuarantineError as exc:
             _fail(exc)
         _print_moves(doc["quarantine"], err=on_stdout)  # before the output: what moved is said whatever follows
-    text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else to_csv(doc)
+    text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else (plan_csv(doc) if plan_path else to_csv(doc))
     if on_stdout:
         click.echo(text, nl=False)
     else:
@@ -136,7 +172,8 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
     if stopped:
         _fail(stopped)
     if not quiet:
-        click.echo(_summary(doc) + (f" Written to {output}." if output else "")
+        summary = _plan_summary(doc, plan_path) if plan_path else _summary(doc)
+        click.echo(summary + (f" Written to {output}." if output else "")
                    + (f" Review page: {report_path}." if report_path else ""), err=on_stdout)
 
 
