@@ -24,7 +24,7 @@ def _fail(message) -> None:
 @click.option("--seed", default=0, show_default=True, type=click.IntRange(0, 2**31 - 1),
               help="Seed of the layout: the same seed and items give the same map.")
 @click.option("--sample", type=click.IntRange(100, 1_000_000),
-              help="Items laid out by t-SNE (default 25 000); the others are placed by their nearest neighbours.")
+              help="Items laid out by t-SNE (default 10 000); the others are placed by their nearest neighbours.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print what was done as JSON.")
 def map_cmd(db, layer, full, seed, sample, quiet, as_json):

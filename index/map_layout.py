@@ -19,7 +19,7 @@ import numpy as np
 
 PCA_DIM = 50  # t-SNE on PCA-reduced input, as in van der Maaten and Hinton (2008)
 PERPLEXITY = 30.0  # openTSNE's and scikit-learn's default
-SAMPLE = 25_000  # items laid out by t-SNE; the rest are placed (docs/map.md: time vs neighbour keeping)
+SAMPLE = 10_000  # items laid out by t-SNE; the rest are placed (docs/map.md: time vs neighbour keeping)
 PLACE_K = 10  # sampled neighbours an item's position is taken from
 FFT_FROM = 10_000  # t-SNE gradients by FFT interpolation from this many points, Barnes-Hut below
 CHUNK = 50_000  # vectors read and placed at a time (bounds memory)

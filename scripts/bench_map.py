@@ -1,7 +1,7 @@
 """The collection map's layout: which method, and what it costs at 10 000 to 1 000 000 items.
 
     .venv/bin/python scripts/bench_map.py compare            # methods side by side (about 10 min)
-    .venv/bin/python scripts/bench_map.py scale [--sizes 10000 100000 1000000]
+    .venv/bin/python scripts/bench_map.py scale [--sizes 10000 100000 1000000] [--sample N] [--full-limit N]
 
 `compare` lays out the same data with each candidate: PCA to 2-D (a linear baseline), t-SNE through
 scikit-learn (Barnes-Hut), t-SNE through openTSNE (FFT gradients; what index/map_layout.py uses) and
@@ -10,9 +10,9 @@ after PCA to 50 dimensions, on two data sets: scikit-learn's handwritten digits 
 images of 8x8 pixels, the pixels as descriptors; an outside data set with 10 known classes) and 10 000
 synthetic clustered descriptors (index.synthetic, 672 dimensions like the `parts` layer).
 
-`scale` runs kinscope's own path (index.map_layout.layout: t-SNE of at most SAMPLE items, the rest
-placed by their nearest sampled neighbours) on synthetic descriptors, and at sizes above the sample
-also a t-SNE of every item when that stays under about 15 minutes (100 000).
+`scale` runs kinscope's own path (index.map_layout.layout: t-SNE of at most --sample items, default
+SAMPLE, the rest placed by their nearest sampled neighbours) on synthetic descriptors, and with
+--full-limit also a t-SNE of every item for sizes above the sample up to that limit.
 
 For each case: seconds, the resident memory the layout added (sampled every 20 ms, over what the data
 already took), the share of each item's 10 nearest neighbours in descriptor space that are among its
@@ -158,7 +158,8 @@ def main() -> None:
     parser.add_argument("spec", nargs="?")
     parser.add_argument("--sizes", type=int, nargs="+", default=[10_000, 100_000, 1_000_000])
     parser.add_argument("--methods", nargs="+", default=["pca2", "sklearn-tsne", "opentsne", "umap"])
-    parser.add_argument("--full-limit", type=int, default=100_000, help="largest size also laid out whole")
+    parser.add_argument("--sample", type=int, default=ml.SAMPLE, help="items laid out by t-SNE (the rest placed)")
+    parser.add_argument("--full-limit", type=int, default=0, help="sizes up to this are also laid out whole")
     parser.add_argument("--seed", type=int, default=0)
     args = parser.parse_args()
     if args.what == "_case":
@@ -171,8 +172,8 @@ def main() -> None:
                 show(run_child({"data": name, "n": n, "method": m, "seed": args.seed}))
         return
     for n in args.sizes:
-        show(run_child({"data": "synth", "n": n, "method": "kinscope", "seed": args.seed, "sample": ml.SAMPLE}))
-        if ml.SAMPLE < n <= args.full_limit:
+        show(run_child({"data": "synth", "n": n, "method": "kinscope", "seed": args.seed, "sample": args.sample}))
+        if args.sample < n <= args.full_limit:
             show(run_child({"data": "synth", "n": n, "method": "kinscope", "seed": args.seed, "sample": n}))
 
 

@@ -198,7 +198,9 @@ export class MapCanvas {
     ctx.save();
     ctx.scale(dpr, dpr);
     this.visible = visible;
-    this.level = visible > 0 && visible <= THUMB_LIMIT ? "thumbnails" : "points";
+    // Thumbnails once few points are in view and they would cover at most about half of it.
+    const side = this.thumbSide(), { w, h } = this.size();
+    this.level = visible > 0 && visible <= THUMB_LIMIT && visible * side * side <= 0.5 * w * h ? "thumbnails" : "points";
     this.drawnThumbs = this.level === "thumbnails" ? this.drawThumbs(inView) : 0;
     this.drawOverlay();
     ctx.restore();
