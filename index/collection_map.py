@@ -3,8 +3,8 @@
 `build` lays the layer's descriptors out (index.map_layout) and stores the result in the database
 folder as `map-<layer>.npz` (atomic write), with the manifest generation and the items' content hashes
 it reflects. After later indexing runs it is brought up to date instead of laid out again: removed or
-changed items leave it, new ones are placed at the inverse-distance weighted mean of the positions of
-their nearest mapped neighbours, found by the layer's own FAISS store (cosine similarity). A full
+changed items leave it, new ones are placed by their nearest mapped neighbours (the rule of
+index.map_layout.weighted_position), found by the layer's own FAISS store (cosine similarity). A full
 layout is made again when the items placed that way since the last one exceed GROWTH of the items it
 laid out (or with full=True). `current` applies the same update in memory, without writing (the web
 server is a reader), up to that threshold.
@@ -140,7 +140,7 @@ def _place_new(archive, layer: str, new: np.ndarray, base: Layout) -> np.ndarray
         if len(lost):  # every near item was new as well: look further for mapped ones
             idx[lost], dist[lost] = _mapped_neighbours(store, vectors[lost], base.ids, max(SEARCH_K, DEEPER_K))
         still = (idx < 0).all(axis=1)
-        out[start:start + len(vectors)] = ml.weighted_position(idx, dist, base.xy)
+        out[start:start + len(vectors)] = ml.weighted_position(idx, dist, base.xy, new[start:start + len(vectors)])
         out[start + np.flatnonzero(still)] = 0.5  # nothing mapped near it: the centre, until the next layout
     return out
 

@@ -4,9 +4,9 @@ Published methods only: PCA to 50 dimensions before t-SNE (van der Maaten and Hi
 same), t-SNE with FFT-accelerated gradients (Linderman et al. 2019) through openTSNE (Policar et al.
 2019), neighbours for the affinities found exactly by FAISS so that a fixed seed gives the same
 layout. Archives larger than the sample are laid out from a uniform sample; every other item is put
-at the inverse-distance weighted mean of its nearest sampled neighbours' positions (the same rule
-places items indexed after the map was made; see index.collection_map). The method, the sample size
-and the neighbour counts were chosen by measurement: docs/map.md, scripts/bench_map.py.
+by its nearest sampled neighbours (weighted_position; the same rule places items indexed after the
+map was made, see index.collection_map). The method, the sample size and the placement rule were
+chosen by measurement: docs/map.md, scripts/bench_map.py.
 """
 from __future__ import annotations
 
@@ -21,6 +21,8 @@ PCA_DIM = 50  # t-SNE on PCA-reduced input, as in van der Maaten and Hinton (200
 PERPLEXITY = 30.0  # openTSNE's and scikit-learn's default
 SAMPLE = 10_000  # items laid out by t-SNE; the rest are placed (docs/map.md: time vs neighbour keeping)
 PLACE_K = 10  # sampled neighbours an item's position is taken from
+TAU = 0.02  # width of the placement weights, relative to the nearest anchor's squared distance
+SPREAD = 0.3  # offsets of placed items, relative to the spacing of anchors on the map
 FFT_FROM = 10_000  # t-SNE gradients by FFT interpolation from this many points, Barnes-Hut below
 CHUNK = 50_000  # vectors read and placed at a time (bounds memory)
 
@@ -88,21 +90,50 @@ def tsne(x: np.ndarray, seed: int = 0, *, perplexity: float = PERPLEXITY, n_jobs
     return np.asarray(embedding, np.float32)
 
 
-def place(queries: np.ndarray, anchors: np.ndarray, anchor_xy: np.ndarray, k: int = PLACE_K) -> np.ndarray:
+def place(queries: np.ndarray, anchors: np.ndarray, anchor_xy: np.ndarray, ids: np.ndarray,
+          k: int = PLACE_K) -> np.ndarray:
     """Positions for query vectors from their k nearest anchors (exact FAISS search)."""
     idx, dist = exact_neighbours(anchors, min(k, len(anchors)), queries)
-    return weighted_position(idx, dist, anchor_xy)
+    return weighted_position(idx, dist, anchor_xy, ids)
 
 
-def weighted_position(idx: np.ndarray, dist: np.ndarray, anchor_xy: np.ndarray, eps: float = 1e-3) -> np.ndarray:
-    """Inverse-distance (squared) weighted mean of the neighbours' positions: an identical descriptor
-    (distance 0) lands on its twin, a new item among several near ones lands between them. Missing
-    neighbours (index -1) carry no weight."""
+def weighted_position(idx: np.ndarray, dist: np.ndarray, anchor_xy: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    """Where items go from their nearest anchors (rows of anchor_xy; -1 = none; nearest first).
+
+    Weights fall off as exp(-(d^2 - d1^2) / (TAU d1^2)) from the nearest distance d1: measured on
+    synthetic clusters (docs/map.md), a plain or inverse-distance mean of 10 neighbours, whose distances
+    are all alike in many dimensions, put items between islands and kept a quarter as many neighbours
+    as following the nearest anchor. An identical descriptor (d1 = 0) follows its twin alone. Each item
+    is then moved by a small offset fixed by its id (within SPREAD of the distance from its nearest
+    anchor to that anchor's nearest neighbour on the map), so that items following one anchor do not
+    hide each other."""
     valid = idx >= 0
-    w = np.where(valid, 1.0 / (np.asarray(dist, np.float64) + eps) ** 2, 0.0)
+    d2 = np.where(valid, np.asarray(dist, np.float64) ** 2, np.inf)
+    d1 = d2.min(axis=1, keepdims=True)
+    w = np.where(valid, np.exp(-(d2 - d1) / (TAU * d1 + 1e-12)), 0.0)
     w /= np.maximum(w.sum(axis=1, keepdims=True), 1e-300)
-    xy = anchor_xy[np.where(valid, idx, 0)].astype(np.float64)
-    return (w[..., None] * xy).sum(axis=1).astype(np.float32)
+    xy = (w[..., None] * anchor_xy[np.where(valid, idx, 0)].astype(np.float64)).sum(axis=1)
+    nearest = idx[np.arange(len(idx)), np.argmin(d2, axis=1)] if len(idx) else np.zeros(0, np.int64)
+    return (xy + _offsets(ids, _spacing(anchor_xy, nearest))).astype(np.float32)
+
+
+def _spacing(anchor_xy: np.ndarray, which: np.ndarray) -> np.ndarray:
+    """For the anchors `which`: the map distance to their nearest other anchor."""
+    from scipy.spatial import cKDTree
+
+    if len(anchor_xy) < 2 or len(which) == 0:
+        return np.zeros(len(which))
+    unique, back = np.unique(which, return_inverse=True)
+    d, _ = cKDTree(anchor_xy).query(anchor_xy[unique], k=2)
+    return d[:, 1][back]
+
+
+def _offsets(ids: np.ndarray, spacing: np.ndarray) -> np.ndarray:
+    """A point in a disc of radius SPREAD x spacing, spread evenly over ids (R2 sequence) and fixed by each id."""
+    ids = np.asarray(ids, np.float64)
+    radius = SPREAD * spacing * np.sqrt(np.modf(ids * 0.7548776662466927 + 0.5)[0])
+    angle = 2 * np.pi * np.modf(ids * 0.5698402909980532 + 0.5)[0]
+    return np.stack([radius * np.cos(angle), radius * np.sin(angle)], axis=1)
 
 
 def layout(ids: np.ndarray, fetch: Callable[[np.ndarray], np.ndarray], *, seed: int = 0, sample: int = SAMPLE,
@@ -132,7 +163,7 @@ def layout(ids: np.ndarray, fetch: Callable[[np.ndarray], np.ndarray], *, seed: 
     for start in range(0, len(rest), CHUNK):
         part = rest[start:start + CHUNK]
         say(f"placing items {start + 1:,}-{start + len(part):,} of {len(rest):,} by their nearest sampled neighbours")
-        xy[part] = place(projection(fetch(ids[part])), reduced, xy[chosen])
+        xy[part] = place(projection(fetch(ids[part])), reduced, xy[chosen], ids[part])
     return normalise(xy), is_sampled
 
 

@@ -101,7 +101,7 @@ def _map(server) -> dict:
 
 
 def _state(page) -> dict:
-    return page.evaluate("() => ({...document.getElementById('map-app').dataset, ...window.kinscopeMap.view()})")
+    return page.evaluate("() => ({...window.kinscopeMap.view(), ...document.getElementById('map-app').dataset})")
 
 
 def _shot(page, name):
@@ -137,7 +137,7 @@ def test_zooming_in_switches_from_points_to_thumbnails(page):
     _shot(page, "map-thumbnails.png")
     page.keyboard.press("0")  # the whole map again
     page.wait_for_function("() => document.getElementById('map-app').dataset.level === 'points'")
-    assert _state(page)["thumbs"] == "0"
+    assert int(_state(page)["thumbs"]) == 0
 
 
 def test_hover_shows_the_item_and_a_click_offers_search_by_it(page, server):

@@ -174,7 +174,7 @@ export class MapCanvas {
     px.fill(packed(this.colours.paper));
     // Dots grow from one pixel to a few as the view zooms in (as points thin out on screen).
     const density = this.n / Math.max(1, (this.scale * this.scale) / 10000);
-    const dot = Math.max(1, Math.min(4, Math.round(dpr * (density > 50 ? 1 : density > 5 ? 2 : 3))));
+    const dot = Math.max(1, Math.min(6, Math.round(dpr * (density > 200 ? 1 : density > 50 ? 2 : density > 5 ? 3 : 5))));
     const s = this.scale * dpr, tx = this.tx * dpr, ty = this.ty * dpr;
     let visible = 0;
     const inView = [];
