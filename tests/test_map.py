@@ -52,10 +52,10 @@ def test_digits_of_one_class_lie_together_and_neighbours_are_kept(digits, sample
 
 def test_layout_is_deterministic_for_a_seed(digits):
     x, _ = digits
-    ids = np.arange(300)
-    first, _ = ml.layout(ids, lambda i: x[i], seed=3, sample=200)
-    again, _ = ml.layout(ids, lambda i: x[i], seed=3, sample=200)
-    other, _ = ml.layout(ids, lambda i: x[i], seed=4, sample=200)
+    ids = np.arange(200)  # 120 laid out by t-SNE, 80 placed
+    first, _ = ml.layout(ids, lambda i: x[i], seed=3, sample=120)
+    again, _ = ml.layout(ids, lambda i: x[i], seed=3, sample=120)
+    other, _ = ml.layout(ids, lambda i: x[i], seed=4, sample=120)
     assert np.array_equal(first, again)
     assert not np.allclose(first, other)
 
