@@ -28,7 +28,7 @@ def _fail(message) -> None:
 @click.option("-q", "--quiet", is_flag=True, help="No progress lines.")
 @click.option("--json", "as_json", is_flag=True, help="Print what was done as JSON.")
 def map_cmd(db, layer, full, seed, sample, quiet, as_json):
-    """Make or update the map of the archive shown by `kinscope serve` (page "Map").
+    """Make or update the map of the archive shown by `kinscope serve` (page "Map of the archive").
 
     The first run lays every item out (t-SNE of up to --sample items, the rest placed by their nearest
     neighbours). Later runs place items indexed since then by their nearest neighbours and drop removed
@@ -52,4 +52,4 @@ def map_cmd(db, layer, full, seed, sample, quiet, as_json):
         how = (f"{meta['sampled']:,} by t-SNE, the rest placed by their neighbours" if meta["sampled"] < report["items"]
                else "by t-SNE")
         click.echo(f"map of layer {report['layer']} laid out: {report['items']:,} items ({how}; {seconds:.1f} s)")
-    click.echo(f"See it with: kinscope serve --db {db}  (page \"Map\")")
+    click.echo(f"See it with: kinscope serve --db {db}  (page \"Map of the archive\")")
