@@ -315,10 +315,12 @@ def serve(db, host, port, token, allow_hosts):
 
 from .cli_duplicates import duplicates_cmd, restore_cmd  # noqa: E402
 from .cli_roots import roots_cmd  # noqa: E402
+from .cli_map import map_cmd  # noqa: E402
 
 main.add_command(duplicates_cmd)
 main.add_command(restore_cmd)
 main.add_command(roots_cmd)
+main.add_command(map_cmd)
 
 
 if __name__ == "__main__":

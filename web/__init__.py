@@ -42,4 +42,7 @@ def create_app(test_config: dict | None = None) -> Flask:
     app.register_blueprint(api.bp)
     app.register_blueprint(media.bp)
     app.register_blueprint(duplicates.bp)
+    from .map import bp as map_bp  # the collection map: page, /api/map
+
+    app.register_blueprint(map_bp)
     return app
