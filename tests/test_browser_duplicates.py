@@ -120,9 +120,10 @@ def test_review_by_keyboard_export_apply_and_restore(page, review_server, tmp_pa
     assert "same bytes" in text and "look-alike" in text
     near = _group_of(page, "astronaut-bright.jpg")
     assert near.locator("li.dup-member").count() == 5
-    keeper = _card(near, "astronaut-border.jpg")  # the border made it the largest
-    assert keeper.locator(".dup-decision").inner_text() == "stays: largest pixel count"
-    assert _card(near, "astronaut.png").locator(".dup-decision").inner_text() == "would move"
+    keeper = _card(near, "astronaut.png")  # the original: the keeper rule does not reward the border's pixels
+    keeper_text = keeper.locator(".dup-decision").inner_text()
+    assert keeper_text.startswith("stays: ") and keeper_text != "stays: your choice"
+    assert _card(near, "astronaut-border.jpg").locator(".dup-decision").inner_text() == "would move"
     for card in near.locator("li.dup-member").all():  # each member: score, pixel size, file size, date
         facts = card.locator(".dup-facts").inner_text()
         assert "pixels" in facts and "file size" in facts and "file date" in facts
@@ -133,10 +134,15 @@ def test_review_by_keyboard_export_apply_and_restore(page, review_server, tmp_pa
     page.locator("body").click(position={"x": 5, "y": 5})
     page.keyboard.press("n")
     assert page.evaluate("document.activeElement.tagName") == "H2"
-    _card(near, "astronaut.png").locator("input[type=radio]").focus()
-    page.keyboard.press("Space")  # the original stays instead
+    _card(near, "astronaut-border.jpg").locator("input[type=radio]").focus()
+    page.keyboard.press("Space")  # the bordered export stays instead
     near = _group_of(page, "astronaut-bright.jpg")
-    assert _card(near, "astronaut.png").locator(".dup-decision").inner_text() == "stays: your choice"
+    assert _card(near, "astronaut-border.jpg").locator(".dup-decision").inner_text() == "stays: your choice"
+    assert _card(near, "astronaut.png").locator(".dup-decision").inner_text() == "would move"
+    _card(near, "astronaut.png").locator("input[type=radio]").focus()
+    page.keyboard.press("Space")  # and back: the original stays, for the rule's own reason
+    near = _group_of(page, "astronaut-bright.jpg")
+    assert _card(near, "astronaut.png").locator(".dup-decision").inner_text() == keeper_text
     assert _card(near, "astronaut-border.jpg").locator(".dup-decision").inner_text() == "would move"
     _card(near, "astronaut-border.jpg").locator("input[type=checkbox]").focus()
     page.keyboard.press("Space")  # not a copy: it stays where it is

@@ -67,6 +67,9 @@ def init_app(app: Flask) -> None:
         response.headers["Content-Security-Policy"] = CSP
         response.headers["X-Content-Type-Options"] = "nosniff"
         response.headers["X-Frame-Options"] = "DENY"
-        response.headers["Referrer-Policy"] = "no-referrer"
+        # same-origin, not no-referrer: with no-referrer a browser labels the page's own form posts "Origin:
+        # null" (Fetch standard, the request Origin header), which the origin check must refuse; same-origin
+        # still sends nothing to any other site.
+        response.headers["Referrer-Policy"] = "same-origin"
         response.headers["Cross-Origin-Resource-Policy"] = "same-origin"
         return response
