@@ -139,7 +139,9 @@ def test_page_shows_the_cautions_and_labels_every_control(page):
     text = page.inner_text("body")
     assert "not a verdict" in text
     assert "never deletes, moves or changes a file" in text
-    assert "loopback" in text
+    assert "separate, undoable command-line step" in text  # moving duplicates is the CLI's, not the page's
+    assert "consent" in text and "data-protection law" in text
+    assert "loopback" in text and "unencrypted" not in text  # this test server listens on 127.0.0.1
     unlabelled = page.evaluate("""() => Array.from(document.querySelectorAll('input, select, button'))
         .filter(e => !(e.labels && e.labels.length) && !e.getAttribute('aria-label') && !e.textContent.trim())
         .map(e => e.id || e.name || e.outerHTML)""")

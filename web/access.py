@@ -62,6 +62,13 @@ def init_app(app: Flask) -> None:
             return response
         return make_response(jsonify(error="this kinscope server needs its access token"), 401)
 
+    @app.context_processor
+    def exposure():
+        # What the page's cautions say depends on where this server listens (is_loopback: web/serve.py).
+        from .serve import is_loopback
+
+        return {"on_loopback": is_loopback(app.config.get("KINSCOPE_LISTEN") or "127.0.0.1")}
+
     @app.after_request
     def headers(response):
         response.headers["Content-Security-Policy"] = CSP
