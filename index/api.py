@@ -50,6 +50,7 @@ class Archive:
         self.indexer = Indexer(self.db, self.catalog, self.reader, lambda: self.embedder)  # the only writer
         self._backbone: Backbone | None = None
         self._embedder = None
+        self._explain_baseline = None  # index.search.explain_baseline.Baseline, made by the first explanation
 
     @property
     def manifest(self) -> dict:
@@ -215,32 +216,20 @@ class Archive:
             q["box"] = list(box)
         return {"query": q, "layer": name, "offset": int(offset), "more": more, "results": results}
 
-    def explain(self, query, match: int, *, layer: str | None = None, box=None) -> dict:
-        """Why `match` (an id) is similar to the query: heat maps that sum to the score, region pairs,
-        and the channels that carried the score with the archive patches that excite them most."""
-        entry = self._layer(layer)
-        name = entry["name"]
-        if self.whitening(name):
-            raise ArchiveError(f"layer {name} is PCA-whitened; its scores do not split over positions")
-        from .search.explain import descriptor, explain_pair, patch_box
+    def explain(self, query, match: int, *, layer: str | None = None, box=None, mode: str = "centred") -> dict:
+        """Why `match` (an id) is similar to the query: heat maps that add up to a score, region pairs,
+        and the channels that carried the score with the archive patches that excite them most.
 
-        row = self.item(int(match))
-        query_maps = self.embedder.maps_of_image(self.query_image(query, box))[name]
-        match_maps = self.embedder.maps_of_image(self.query_image(int(match)))[name]
-        result = explain_pair(query_maps, match_maps, self.manifest["pooling"]["p"])
-        stored = self.store(name).reconstruct(np.array([int(match)]))[0]
-        result["indexed_score"] = float(descriptor(query_maps, self.manifest["pooling"]["p"]) @ stored)
-        alive = set(self.catalog.get(
-            [e["id"] for c in result["channels"] for e in self.exemplars(name).top(c["channel"])]))
-        rows, cols = self.exemplars(name).grid
-        for c in result["channels"]:
-            c["exemplars"] = [
-                {**e, "box": patch_box(*e["cell"], rows, cols, entry["stride"], self.backbone.input_size)}
-                for e in self.exemplars(name).top(c["channel"], alive)[:4]
-            ]
-        result["query_map"] = np.round(result["query_map"], 7).tolist()
-        result["match_map"] = np.round(result["match_map"], 7).tolist()
-        return {"layer": name, "match": {k: row[k] for k in ("id", "path", "width", "height")}, **result}
+        mode "centred" (default) splits the cosine of the descriptors centred on the archive's mean
+        descriptor (what the two share that other images of the archive do not); "cosine" splits the
+        raw cosine, the search score. Formulas in index.search.explain_score; see docs/explain.md.
+        """
+        from .search.explain import ExplainError, explain
+
+        try:
+            return explain(self, query, match, layer=layer, box=box, mode=mode)
+        except ExplainError as exc:
+            raise ArchiveError(str(exc)) from None
 
     # --- items and images -------------------------------------------------------------------
     def item(self, item_id: int) -> dict:
@@ -287,13 +276,14 @@ class Archive:
 
     # --- duplicates -------------------------------------------------------------------------
     def duplicates(self, *, layer: str | None = None, threshold: float | None = None, normalised: bool = True,
-                   progress: bool = False) -> dict:
-        """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md."""
+                   progress: bool = False, prefer: list[str] | None = None) -> dict:
+        """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md.
+        `prefer`: folders whose members the keeper rule prefers, in order."""
         from .duplicates import groups as dup
 
         try:
             return dup.from_archive(self.catalog, self.reader, layer=layer, threshold=threshold,
-                                    normalised=normalised, progress=progress)
+                                    normalised=normalised, progress=progress, prefer=prefer)
         except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
 
@@ -310,6 +300,20 @@ class Archive:
         from .duplicates.quarantine import restore
 
         return restore(manifest, apply=apply)
+
+    @staticmethod
+    def threshold_derivation() -> str:
+        """How the default duplicate thresholds were derived: which data, which rule (plain text)."""
+        from .duplicates.calibration import explain
+
+        return explain()
+
+    @staticmethod
+    def plan_csv(doc: dict) -> str:
+        """A review plan (from duplicate_plan) as the CSV the review page exports and --plan reads."""
+        from .duplicates.plan import to_csv
+
+        return to_csv(doc)
 
     @staticmethod
     def write_review_page(doc: dict, path: str | os.PathLike) -> None:
@@ -336,6 +340,17 @@ class Archive:
         from .db.roots import forget
 
         return forget(self.catalog, self.indexer, root, even_if_present=even_if_present)
+
+    def duplicate_plan(self, decisions: dict | None = None, *, text: str | None = None) -> dict:
+        """A review plan (index.duplicates.plan) from the review page's decisions, or from a plan file's text."""
+        from .duplicates import plan as dup_plan
+
+        try:
+            if text is not None:
+                return dup_plan.plan_from_file(self, text)
+            return dup_plan.plan_from_decisions(self, decisions)
+        except dup_plan.PlanError as exc:
+            raise ArchiveError(str(exc)) from None
 
     # --- verification ---------------------------------------------------------------------
     def check(self) -> dict:
@@ -395,3 +410,31 @@ class Archive:
 
     def __exit__(self, *exc):
         self.close()
+
+    # --- collection map (index/map/) ---------------------------------------------------------
+    def map(self, *, layer: str | None = None, seed: int = 0, full: bool = False, sample: int | None = None,
+            progress=None) -> dict:
+        """Lay the layer's items out in 2-D by similarity and store it (map-<layer>.npz), or bring a
+        stored map up to date (new items placed by their neighbours); see docs/map.md."""
+        from .map import collection as cm
+
+        try:
+            return cm.build(self, self._layer(layer)["name"], seed=seed, full=full,
+                            sample=cm.ml.SAMPLE if sample is None else int(sample), progress=progress)
+        except cm.MapError as exc:
+            raise ArchiveError(str(exc)) from None
+
+    def map_view(self, layer: str | None = None) -> dict | None:
+        """The stored map as of the committed state (updated in memory only), with each item's folder
+        and date; None when `kinscope map` has not been run for the layer."""
+        from .map import collection as cm
+
+        try:
+            return cm.current(self, self._layer(layer)["name"])
+        except cm.MapError as exc:
+            raise ArchiveError(str(exc)) from None
+
+    def paths_of(self, ids: Iterable[int]) -> list[dict]:
+        """[{id, path}] of these indexed items, in id order (ids without an item are left out)."""
+        rows = self.catalog.get(sorted({int(i) for i in ids}))
+        return [{"id": i, "path": rows[i]["path"]} for i in sorted(rows)]

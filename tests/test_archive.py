@@ -13,7 +13,8 @@ from index.api import Archive, ArchiveError
 
 
 def degraded(image: Image.Image) -> bytes:
-    """70% crop, half size, JPEG quality 40 (transformations of the kind used in copy detection)."""
+    """70% crop, half size, JPEG quality 40 (transformations of the kinds used in copy detection: Douze et al.,
+    "The 2021 Image Similarity Dataset and Challenge", 2021)."""
     w, h = image.size
     cw, ch = int(w * 0.7), int(h * 0.7)
     left, top = (w - cw) // 2, (h - ch) // 3

@@ -13,7 +13,8 @@ def top5(backbone, model, image) -> list[str]:
     from index.model.torch_embedder import Embedder
     from index.model.layers import resolve_layers
 
-    size = 224  # the resolution the classifier was trained at (EfficientNet paper, B0/Lite0)
+    size = 224  # Lite0's training resolution, as listed in the EfficientNet-Lite release of the TensorFlow TPU
+    # models repository (2020) that introduced the Lite variants (from memory; the EfficientNet paper covers B0-B7 only)
     x = np.asarray(image.convert("RGB").resize((size, size)), np.float32).transpose(2, 0, 1) / 255.0
     mean = np.asarray(backbone.mean, np.float32)[:, None, None]
     std = np.asarray(backbone.std, np.float32)[:, None, None]

@@ -139,7 +139,9 @@ def test_page_shows_the_cautions_and_labels_every_control(page):
     text = page.inner_text("body")
     assert "not a verdict" in text
     assert "never deletes, moves or changes a file" in text
-    assert "loopback" in text
+    assert "separate, undoable command-line step" in text  # moving duplicates is the CLI's, not the page's
+    assert "consent" in text and "data-protection law" in text
+    assert "loopback" in text and "unencrypted" not in text  # this test server listens on 127.0.0.1
     unlabelled = page.evaluate("""() => Array.from(document.querySelectorAll('input, select, button'))
         .filter(e => !(e.labels && e.labels.length) && !e.getAttribute('aria-label') && !e.textContent.trim())
         .map(e => e.id || e.name || e.outerHTML)""")
@@ -176,22 +178,54 @@ def test_explanation_opens_with_heat_maps_pairs_and_channels(page):
     dialog = page.locator("#explain-dialog")
     assert dialog.evaluate("d => d.open")
     assert "not a verdict" in dialog.inner_text()
+    # Two scores, each with its sentence: the search score, and the similarity beyond the archive's average.
     score = float(dialog.locator(".big-score").inner_text())
     assert score == pytest.approx(float(page.locator("#results li.result .score").first.inner_text()), abs=2e-3)
+    centred = float(dialog.locator(".big-score-centred").inner_text())
+    assert -1 <= centred < score
+    summary = dialog.locator(".explain-summary").inner_text()
+    assert "the results are ranked by" in summary and "beyond the archive's average" in summary.lower()
     for who in ("query", "match"):
         canvas = dialog.locator(f"canvas.heat-{who}")
-        assert "add up to the score" in canvas.get_attribute("aria-label")
+        assert "add up to the similarity beyond the archive's average" in canvas.get_attribute("aria-label")
         # The canvas has been drawn on: some pixel is not transparent.
         drawn = canvas.evaluate("c => c.width > 0 && c.getContext('2d').getImageData(0, 0, c.width, c.height).data.some((v, i) => i % 4 === 3 && v > 0)")
         assert drawn, f"nothing drawn over the {who}"
     pairs = dialog.locator("#pair-list li")
-    assert pairs.count() >= 3 and "of the score" in pairs.first.inner_text()
+    assert pairs.count() >= 3 and "alike" in pairs.first.inner_text()
+    assert "texture layer" in dialog.locator("#pairs-heading + p").inner_text()  # where the pairs come from
+    # Stepping through the pairs: the buttons, then the arrow keys on the list.
+    page.click("#pair-next")
+    assert page.inner_text("#pair-position").startswith(f"Pair 1 of {pairs.count()}")
+    page.keyboard.press("ArrowDown")
+    assert page.inner_text("#pair-position").startswith("Pair 2 of")
+    assert page.evaluate("document.activeElement.dataset.n") == "2"
+    assert dialog.locator("#pair-list li.is-active").get_attribute("data-n") == "2"
+    page.keyboard.press("ArrowUp")
+    page.keyboard.press("ArrowUp")  # wraps round to the last pair
+    assert page.inner_text("#pair-position").startswith(f"Pair {pairs.count()} of")
+    page.click("#pair-all")
+    assert page.inner_text("#pair-position").startswith("All")
     channels = dialog.locator("#channel-list li.channel")
     assert channels.count() >= 3 and "Detector" in channels.first.inner_text()
     patch = channels.first.locator(".exemplars img").first
     patch.scroll_into_view_if_needed()
     assert patch.evaluate("img => img.complete ? img.naturalWidth : new Promise(r => img.onload = () => r(img.naturalWidth))") > 0
+    dialog.locator(".explain-summary").scroll_into_view_if_needed()
     _shot(page, "explanation.png", dialog)
+    page.set_viewport_size({"width": 1400, "height": 2000})  # the whole view at once (docs/explain.md)
+    page.click("#pair-next")
+    _shot(page, "explanation-full.png", dialog)
+    page.click("#pair-all")
+    page.set_viewport_size({"width": 1400, "height": 1000})
+    # The raw score's split is one choice away, and says so.
+    with page.expect_response(lambda r: "/api/explain" in r.url and "mode=cosine" in r.url):
+        page.click("label[for=explain-mode-cosine]")
+    page.wait_for_selector("#explain-mode-cosine:checked")
+    assert "add up to the score" in dialog.locator("canvas.heat-query").get_attribute("aria-label")
+    assert float(dialog.locator(".big-score").inner_text()) == pytest.approx(score, abs=1e-3)
+    page.click("label[for=explain-mode-centred]")  # back, from what the page kept
+    page.wait_for_selector("#explain-mode-centred:checked")
     # The heat maps can be switched off, and the legend goes with them.
     page.click("label[for=toggle-heat]")
     assert page.locator("#heat-legend").is_hidden()

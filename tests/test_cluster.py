@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import os
+import sqlite3
 import threading
 import time
 
@@ -61,18 +62,30 @@ def test_cluster_run_equals_the_single_process_run(tmp_path, client):
 def test_a_worker_killed_mid_run_loses_nothing(tmp_path, client):
     imgs = _folder(tmp_path / "imgs", 120, seed=5)
     archive = Archive.open(tmp_path / "db", create=True, layers=["colour"])
+    finished = threading.Event()
+    state = {}
 
     def kill_one_worker():
-        time.sleep(3.0)
+        # Wait until the run has committed some work, then kill a worker while it is still going.
+        deadline = time.monotonic() + 300
+        while time.monotonic() < deadline and not finished.is_set():
+            with sqlite3.connect(tmp_path / "db" / "catalog.sqlite") as con:
+                done = con.execute("select count(*) from images where status = 'ok'").fetchone()[0]
+            if done >= 16:
+                break
+            time.sleep(0.05)
         workers = list(client.scheduler_info()["workers"])
-        if workers:
+        if workers and not finished.is_set():
             pid = client.run(os.getpid, workers=[workers[0]])[workers[0]]
             os.kill(pid, 9)
+            state["killed_during_run"] = not finished.is_set()
 
     killer = threading.Thread(target=kill_one_worker)
     killer.start()
     report = archive.add([imgs], progress=False, cluster=client, checkpoint_every=16)
+    finished.set()
     killer.join()
+    assert state.get("killed_during_run"), "no worker was killed while the run was going: the fault was not injected"
     assert report["embedded"] == 120
     rows = list(archive.catalog.db.query("select path from images"))
     assert len(rows) == len({r["path"] for r in rows}) == 120  # every image, once

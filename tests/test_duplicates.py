@@ -118,31 +118,34 @@ def test_different_images_are_not_grouped(dup_archive):
     assert doc["counts"]["images_in_groups"] == 6
 
 
-def test_keeper_rule_on_rows():
-    rows = [
-        {"path": "/a/long/path/big.jpg", "width": 2000, "height": 1000, "mtime": 50.0},
-        {"path": "/a/small.jpg", "width": 1000, "height": 1000, "mtime": 1.0},
-    ]
-    assert dup.choose_keeper(rows) == 0  # largest pixel count wins over age and path
-    rows[1]["width"] = 2000
-    assert dup.choose_keeper(rows) == 1  # same pixel count: oldest modification time
-    rows[1]["mtime"] = 50.0
-    assert dup.choose_keeper(rows) == 1  # same pixels and time: shortest path
-    assert dup.keeper_reason(rows, 1) == "same pixel count and modification time; shortest path"
-
-
 def test_keeper_rule_in_the_archive(dup_archive):
     archive, root, _ = dup_archive
     doc = archive.duplicates()
     for g in doc["groups"]:
         keeper = next(m for m in g["members"] if m["id"] == g["keeper"])
-        if g["kind"] == "exact":  # same pixels; the copy in exports/ has the older modification time
+        if g["kind"] == "exact":  # same bytes; the copy in exports/ has the older modification time
             assert keeper["path"] == str(root / "exports" / "coffee-copy.png")
-            assert g["keeper_reason"] == "same pixel count; oldest modification time"
-        elif source_of(keeper["path"]) == "astronaut":  # the original has four times the pixels
+            assert g["keeper_reason"] == "equal on the picture's evidence; oldest modification time"
+        elif source_of(keeper["path"]) == "astronaut":  # the original has four times the pixels and the detail
             assert keeper["path"] == str(root / "scans" / "astronaut.png")
-            assert g["keeper_reason"] == "largest pixel count"
-    assert "largest pixel count, then oldest modification time, then shortest path" == doc["rules"]["keeper"]
+            assert g["keeper_reason"].startswith("largest effective resolution (262,144 pixels of picture against")
+        else:  # chelsea: same size, but the copy was brightened and saved as JPEG quality 90; the original is PNG
+            assert keeper["path"] == str(root / "scans" / "chelsea.png")
+            assert "lighter compression (quality 100 against 90)" in g["keeper_reason"]
+        assert all("evidence" in m and m["evidence"]["eligible"] for m in g["members"])
+    assert doc["rules"]["keeper"] == dup.KEEPER_RULE and "--prefer" in doc["rules"]["keeper"]
+
+
+def test_prefer_folders_decide_the_keeper_from_the_command_line(dup_archive):
+    archive, root, db = dup_archive
+    res = CliRunner().invoke(main, ["duplicates", "--db", str(db), "-q", "--prefer", str(root / "exports" / "web")])
+    assert res.exit_code == 0, res.output
+    doc = json.loads(res.stdout)
+    astronaut = next(g for g in doc["groups"] if source_of(g["members"][0]["path"]) == "astronaut")
+    keeper = next(m for m in astronaut["members"] if m["id"] == astronaut["keeper"])
+    assert keeper["path"] == str(root / "exports" / "web" / "astronaut-small.jpg")  # the user's word wins
+    assert astronaut["keeper_reason"] == "in a folder given with --prefer"
+    assert doc["rules"]["keeper"].endswith(f"Preferred folders: {root / 'exports' / 'web'}.")
 
 
 def test_member_scores_and_pairs_are_cosines_of_the_stored_descriptors(dup_archive):
@@ -178,7 +181,10 @@ def test_csv_output_has_one_row_per_member_with_its_group(dup_archive, tmp_path)
     target = tmp_path / "groups.csv"
     out = CliRunner().invoke(main, ["duplicates", "--db", str(db), "--format", "csv", "--output", str(target)])
     assert out.exit_code == 0, out.output
-    rows = list(csv.DictReader(open(target, newline="")))  # Python's csv module (RFC 4180 dialect)
+    raw = target.read_bytes()
+    # RFC 4180, section 2: each record ends with CRLF (and no bare LF ends one).
+    assert raw.endswith(b"\r\n") and raw.count(b"\n") == raw.count(b"\r\n")
+    rows = list(csv.DictReader(open(target, newline="")))  # read back by Python's csv module
     doc = archive.duplicates()
     assert len(rows) == sum(len(g["members"]) for g in doc["groups"])
     for g in doc["groups"]:
@@ -272,7 +278,10 @@ def test_move_and_restore_round_trip_leaves_every_file_byte_identical(small_arch
     restored = runner.invoke(main, ["restore", report["manifest"], "--apply"])
     assert restored.exit_code == 0, restored.output
     assert snapshot(root) == before  # every file back, byte-identical, with its modification time
-    assert [p.name for p in quarantine.rglob("*") if p.is_file()] == [os.path.basename(report["manifest"])]
+    # what is left in the quarantine: the manifest and its journal of the moves
+    journal = report["manifest"][:-len(".json")] + ".journal"
+    assert sorted(p.name for p in quarantine.rglob("*") if p.is_file()) == sorted(
+        [os.path.basename(report["manifest"]), os.path.basename(journal)])
     again = runner.invoke(main, ["restore", report["manifest"], "--apply"])
     assert again.exit_code == 0 and again.output.count("already in place") == 3
 
@@ -320,7 +329,7 @@ def test_exact_candidate_search_equals_numpy_brute_force():
 
 
 def test_approximate_search_finds_what_exact_search_finds():
-    # The IVF path (forced with exact_max=0) against numpy brute force on 12 000 vectors.
+    # The IVF path (forced with exact_max=0) against numpy brute force on 11 000 vectors.
     x, _ = planted(11_000, 96, 1000, seed=1)
     truth = brute_force_pairs(x, 0.9)
     a, b, s, c = dup.candidate_pairs(x, 0.9, exact_max=0)
@@ -342,34 +351,91 @@ def test_star_groups_do_not_chain_a_series_of_links():
     assert not any({0, 5} <= set(m.tolist()) for _, m in groups)
 
 
-def test_background_matches_a_numpy_reference():
-    # Reference: numpy sort and median over every other row (the whole set is the sample here).
-    rng = np.random.default_rng(3)
-    x = l2_normalize(np.abs(rng.normal(size=(200, 32))))
+def reference_background(x: np.ndarray, rank: int, excluded: set[tuple[int, int]] = frozenset(),
+                         cap: float | None = None) -> np.ndarray:
+    # Reference: numpy sort and median over every row of x @ x.T (the whole set is the sample here), with the
+    # item itself and its excluded partners replaced by the row's median, as docs/duplicates.md defines it.
     s = x @ x.T
-    np.fill_diagonal(s, np.nan)
-    others = np.sort(s, axis=1)[:, :-1]  # NaN sorts last
-    top = others[:, -dup.BACKGROUND_RANK]
-    med = np.median(others, axis=1)
-    mad = 1.4826 * np.median(np.abs(others - med[:, None]), axis=1)
-    assert np.allclose(dup.background(x), np.minimum(top, med + dup.BACKGROUND_CEILING_MADS * mad), atol=1e-5)
+    out = np.empty(len(x))
+    for i in range(len(x)):
+        row = s[i].copy()
+        drop = [i] + [j for j in range(len(x)) if (i, j) in excluded or (j, i) in excluded]
+        row[drop] = np.median(row)
+        top = np.sort(row)[-rank]
+        med = np.median(row)
+        # 1.4826 = 1 / Phi^-1(3/4): scales the MAD to a standard deviation for normal data (Rousseeuw
+        # and Croux, JASA 1993; from memory).
+        mad = 1.4826 * np.median(np.abs(row - med))
+        out[i] = top if cap is None else min(top, med + cap * mad)
+    return out
 
 
-def test_an_items_own_copies_cannot_raise_its_background_to_their_level():
-    # Thirty copies of one item in a set of 300: its 10th neighbour is a copy; the ceiling (median + 5 MAD of
-    # its similarities, computed here with numpy) keeps the background far below the copies.
-    rng = np.random.default_rng(4)
-    x = l2_normalize(rng.normal(size=(270, 640)))  # descriptors have hundreds of dimensions
-    copies = l2_normalize(x[0] + 0.3 * rng.normal(size=(30, 640)) / np.sqrt(640))
-    x = np.vstack([x, copies]).astype(np.float32)
-    bg = dup.background(x)
-    sims = x[1:] @ x[0]
+def test_background_matches_a_numpy_reference():
+    rng = np.random.default_rng(3)
+    x = l2_normalize(np.abs(rng.normal(size=(200, 32)))).astype(np.float32)
+    assert np.allclose(dup.background(x), reference_background(x, dup.BACKGROUND_RANK), atol=1e-5)
+    excluded = {(0, 5), (7, 0), (3, 4)}
+    got = dup.background(x, exclude=(np.array([0, 7, 3]), np.array([5, 0, 4])))
+    assert np.allclose(got, reference_background(x, dup.BACKGROUND_RANK, excluded), atol=1e-5)
+    capped = dup.background(x, ceiling_mads=2.0)  # the optional cap: median + 2 MAD
+    assert np.allclose(capped, reference_background(x, dup.BACKGROUND_RANK, cap=2.0), atol=1e-5)
+
+
+def test_the_local_background_is_the_kth_nearest_cosine():
+    # Reference: numpy sort of each row of x @ x.T (the k-th most similar other row), exact search path; the
+    # approximate path (projection) must come close to it.
+    x, _ = planted(3000, 48, 300, seed=5)
+    s = x @ x.T
+    np.fill_diagonal(s, -np.inf)
+    truth = np.sort(s, axis=1)[:, -5]
+    exact = dup.candidate_pairs(x, 0.9, kth=5)[4]
+    assert np.allclose(exact, truth, atol=1e-5)
+    approx = dup.candidate_pairs(x, 0.9, kth=5, exact_max=0)[4]
+    assert np.median(np.abs(approx - truth)) < 0.02
+
+
+def many_copies(n_other: int = 270, copies: int = 30, seed: int = 4):
+    rng = np.random.default_rng(seed)
+    x = l2_normalize(np.maximum(rng.normal(size=(n_other, 640)) + 0.3, 0))  # non-negative, like GeM descriptors
+    strength = rng.uniform(0.3, 0.6, (copies, 1))  # cosine to the original from about 0.95 down to 0.85
+    near = l2_normalize(np.maximum(x[0] + strength * rng.normal(size=(copies, 640)) / np.sqrt(640), 0))
+    return np.vstack([x, near]).astype(np.float32)
+
+
+def test_an_items_own_copies_do_not_lift_its_background():
+    # Thirty copies of one item in a set of 300: its 10th most similar item is a copy, so the plain rank
+    # statistic sits at the copies' level. The screened background leaves the copies out and comes back to
+    # the level of an unrelated item's background.
+    x = many_copies()
     copy_cos = x[270:] @ x[0]
-    assert np.sort(sims)[-dup.BACKGROUND_RANK] >= copy_cos.min()  # the plain rank statistic is a copy
-    med = np.median(sims)
-    assert bg[0] == pytest.approx(med + 5 * 1.4826 * np.median(np.abs(sims - med)), abs=1e-5)
-    assert bg[0] < copy_cos.min() - 0.5
+    plain = dup.background(x, ceiling_mads=np.inf)
+    assert plain[0] >= np.sort(copy_cos)[0]  # the unscreened rank statistic is a copy
+    a, b, _, cos, local = dup.candidate_pairs(x, 0.0, min_cosine=0.0, kth=dup.LOCAL_RANK)
+    bg, n_copies = dup.screened(x, a, b, cos, local)
+    assert n_copies >= 30 * 31 // 2 * 0.9  # (almost) every pair among the 31 versions was screened
+    others = bg[1:270]
+    assert bg[0] <= np.quantile(others, 0.95) + 0.02
     assert (dup.normalise(copy_cos, np.full(30, bg[0]), bg[270:]) >= dup.DEFAULT_THRESHOLD).all()
+
+
+def test_thirty_one_versions_form_one_group():
+    x = many_copies()
+    ids = np.arange(100, 100 + len(x))
+    rows = [{"path": f"/a/{n:03d}.jpg", "width": 10, "height": 10, "mtime": 0.0} for n in range(len(x))]
+    doc = dup.find(ids, x, rows, min_cosine=0.5)
+    near = [g for g in doc["groups"] if g["kind"] == "near"]
+    assert len(near) == 1
+    assert sorted(m["id"] for m in near[0]["members"]) == [100] + list(range(370, 400))
+
+
+def test_second_links_join_an_item_linked_to_two_members_but_not_one():
+    # Star from 0 over 1, 2, 3 (the most edges); item 4 has edges to members 1 and 2, item 5 to member 3 only.
+    i = np.array([0, 0, 0, 1, 2, 3])
+    j = np.array([1, 2, 3, 4, 4, 5])
+    s = np.full(6, 0.5, np.float32)
+    groups = dup.near_groups(6, i, j, s)
+    assert [sorted(m.tolist()) for _, m in groups] == [[0, 1, 2, 3, 4]]
+    assert [sorted(m.tolist()) for _, m in dup.star_groups(6, i, j, s)] == [[0, 1, 2, 3]]
 
 
 def test_layers_without_a_calibrated_threshold_need_one(dup_archive):

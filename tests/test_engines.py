@@ -126,9 +126,14 @@ def test_pooling_equals_the_reference_gem_and_peaks(p):
     fmap[1, 4] = 0  # a dead channel
     descriptors, peaks = pool({"x": fmap.clone()}, p)  # pool works in place
     assert np.abs(descriptors["x"] - l2_normalize(gem(fmap, p).numpy())).max() < 1e-6
-    values, where = fmap.flatten(2).max(dim=2)
+    # Peaks are taken away from the outer ring of cells (index.model.onnx_engine.PEAK_RING = 1), positions in
+    # the whole 9 x 7 grid: torch's max over the interior slice is the reference.
+    values, inner = fmap[:, :, 1:-1, 1:-1].flatten(2).max(dim=2)
+    where = (inner // 5 + 1) * 7 + inner % 5 + 1
     assert np.array_equal(peaks["x"][0], values.numpy()) and np.array_equal(peaks["x"][1], where.numpy())
     assert peaks["x"][2] == (9, 7)
+    flat = fmap.flatten(2)
+    assert np.array_equal(flat.gather(2, where.unsqueeze(2)).squeeze(2), values)
     # Two layers handing back the same tensor (an identity tap) are both pooled from the original.
     shared = fmap.clone()
     twice, _ = pool({"a": shared, "b": shared}, p)

@@ -14,7 +14,7 @@ ROOT = Path(__file__).resolve().parents[1]
 MAX_LINES = 500
 MAX_WIDTH = 120  # characters a line, across index/
 # Rooms of index/ and what each may import (besides itself), in the one direction data flows:
-# common < {db, images, vectors} < model < search < ingest < duplicates < api < cli.
+# common < {db, images, vectors} < model < search < ingest < {duplicates, map} < api < cli.
 ALLOWED = {
     "common": set(),
     "db": {"common"},
@@ -24,7 +24,8 @@ ALLOWED = {
     "search": {"common", "db", "images", "vectors", "model"},
     "ingest": {"common", "db", "images", "vectors", "model", "search"},
     "duplicates": {"common", "db", "images", "vectors"},
-    "api": {"common", "db", "images", "vectors", "model", "search", "ingest", "duplicates"},
+    "map": {"common", "db", "vectors"},
+    "api": {"common", "db", "images", "vectors", "model", "search", "ingest", "duplicates", "map"},
     "cli": {"api"},
     "__main__": {"cli"},
     "": set(),  # index/__init__.py: the version only (every room may read it)

@@ -170,7 +170,7 @@ def test_default_flat_limit_follows_the_work_of_an_exact_query():
     # vectors x dimensions <= 32 million multiply-adds per query
     assert policy.flat_limit(672) == 32_000_000 // 672
     assert policy.flat_limit(1280) < policy.flat_limit(672) < policy.flat_limit(32) == 1_000_000
-    assert lists_for(1_000_000, policy) == 4096 and lists_for(50_000, policy) == 1024  # ~4 sqrt(n), power of 2
+    assert lists_for(1_000_000, policy) == 4096 and lists_for(50_000, policy) == 1024  # ~4 sqrt(n), power of 2 (common practice for IVF)
 
 
 def test_an_archive_switches_to_ivf_records_it_in_the_manifest_and_stays_consistent(tmp_path):
@@ -269,7 +269,8 @@ def test_a_low_dimension_store_is_built_with_16_bit_codes_and_an_8_bit_one_is_co
     _, found = reader.search(queries, 10)
     recall = np.mean([len(set(f) & set(t)) / 10 for f, t in zip(found, truth)])
     assert recall >= 0.9, recall
-    # Vectors added since hold 16-bit floats (half a step: 2^-12 below 0.5); converted ones keep the
+    # Vectors added since hold 16-bit floats (IEEE 754 binary16, 10 fraction bits: half a step is 2^-13
+    # below 0.5 and 2^-12 = 2.44e-4 from 0.5 to 1, hence the bound just above it); converted ones keep the
     # error of their 8-bit codes, which the conversion did not add to.
     assert np.abs(reader.reconstruct(ids[12_000:12_050]) - x[12_000:12_050]).max() < 2.5e-4
     assert np.abs(reader.reconstruct(ids[:50]) - x[:50]).max() < 5e-3

@@ -43,8 +43,13 @@ def test_upload_then_search_then_explain(client, sample_images):
     ex = c.get(f"/api/explain?upload={token}&match={first['id']}&layer=objects").get_json()
     assert np.sum(ex["query_map"]) == pytest.approx(ex["score"], abs=1e-4)
     assert np.sum(ex["match_map"]) == pytest.approx(ex["score"], abs=1e-4)
-    assert ex["score"] == pytest.approx(first["score"], abs=1e-4)
-    assert ex["channels"] and ex["pairs"]
+    assert ex["mode"] == "centred" and ex["cosine"] == pytest.approx(first["score"], abs=1e-4)
+    assert ex["channels"] and ex["pairs"] and ex["pair_layer"]["name"] == "texture"
+    raw = c.get(f"/api/explain?upload={token}&match={first['id']}&layer=objects&mode=cosine").get_json()
+    assert raw["mode"] == "cosine" and raw["score"] == pytest.approx(first["score"], abs=1e-4)
+    assert np.sum(raw["query_map"]) == pytest.approx(first["score"], abs=1e-4)
+    bad = c.get(f"/api/explain?upload={token}&match={first['id']}&mode=whitened")
+    assert bad.status_code == 400 and "mode must be one of" in bad.get_json()["error"]
     patch = ex["channels"][0]["exemplars"][0]["patch"]
     assert c.get(patch).mimetype == "image/jpeg"
 
@@ -218,3 +223,26 @@ def test_serve_command_refuses_a_public_address_without_token(sample_archive):
     archive, _ = sample_archive
     out = CliRunner().invoke(main, ["serve", "--db", str(archive.db), "--host", "0.0.0.0"], env={"KINSCOPE_TOKEN": ""})
     assert out.exit_code == 2 and "refusing to listen" in out.output
+
+
+def test_cautions_say_where_the_server_can_be_reached(sample_archive, monkeypatch):
+    """The page and the serve command say "this machine only" on loopback, and warn of plain HTTP off it."""
+    from click.testing import CliRunner
+
+    import web.serve
+    from index.cli import main
+
+    archive, _ = sample_archive
+    token = "a-long-enough-test-token"
+    local = create_app({"KINSCOPE_DB": str(archive.db)}).test_client().get("/").get_data(as_text=True)
+    assert "this machine only" in local and "unencrypted" not in local
+    wide = create_app({"KINSCOPE_DB": str(archive.db), "KINSCOPE_TOKEN": token, "KINSCOPE_LISTEN": "0.0.0.0",
+                       "KINSCOPE_PORT": 8470}).test_client()
+    page = wide.get("/", headers={"Host": "192.0.2.7:8470", "Authorization": f"Bearer {token}"}).get_data(as_text=True)
+    assert "unencrypted" in page and "this machine only" not in page
+    monkeypatch.setattr(web.serve, "serve", lambda *a, **k: None)  # say what it would serve, then return
+    out = CliRunner().invoke(main, ["serve", "--db", str(archive.db), "--host", "0.0.0.0"], env={"KINSCOPE_TOKEN": token})
+    assert out.exit_code == 0, out.output
+    assert "Only this machine" not in out.output and "unencrypted" in out.output
+    out = CliRunner().invoke(main, ["serve", "--db", str(archive.db)], env={"KINSCOPE_TOKEN": ""})
+    assert "Only this machine can reach it" in out.output

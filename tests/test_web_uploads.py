@@ -116,7 +116,9 @@ def test_region_search_and_explanation_of_a_kept_upload_agree(sample_archive, sa
     assert found["query"]["box"] == [0.2, 0.1, 0.7, 0.8] and found["results"][0]["name"] == "chelsea.png"
     first = found["results"][0]
     ex = c.get(f"/api/explain?upload={token}&match={first['id']}&layer=parts&box={box}").get_json()
-    assert ex["score"] == pytest.approx(first["score"], abs=1e-4) and ex["query"]["box"] == [0.2, 0.1, 0.7, 0.8]
+    # The raw cosine of the explanation is the search score; the split shown is of the centred score.
+    assert ex["cosine"] == pytest.approx(first["score"], abs=1e-4) and ex["query"]["box"] == [0.2, 0.1, 0.7, 0.8]
+    assert ex["mode"] == "centred" and float(np.sum(ex["query_map"])) == pytest.approx(ex["score"], abs=1e-4)
 
 
 # --- a real server under an upload flood ----------------------------------------------------------

@@ -36,9 +36,13 @@ def create_app(test_config: dict | None = None) -> Flask:
     archive_access.init_app(app)
     access.init_app(app)
 
-    from . import api, media, pages
+    from . import api, duplicates, media, pages
 
     app.register_blueprint(pages.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(media.bp)
+    app.register_blueprint(duplicates.bp)
+    from .map import bp as map_bp  # the collection map: page, /api/map
+
+    app.register_blueprint(map_bp)
     return app

@@ -62,11 +62,21 @@ def init_app(app: Flask) -> None:
             return response
         return make_response(jsonify(error="this kinscope server needs its access token"), 401)
 
+    @app.context_processor
+    def exposure():
+        # What the page's cautions say depends on where this server listens.
+        from .guard import is_loopback
+
+        return {"on_loopback": is_loopback(app.config.get("KINSCOPE_LISTEN") or "127.0.0.1")}
+
     @app.after_request
     def headers(response):
         response.headers["Content-Security-Policy"] = CSP
         response.headers["X-Content-Type-Options"] = "nosniff"
         response.headers["X-Frame-Options"] = "DENY"
-        response.headers["Referrer-Policy"] = "no-referrer"
+        # same-origin, not no-referrer: with no-referrer a browser labels the page's own form posts "Origin:
+        # null" (Fetch standard, the request Origin header), which the origin check must refuse; same-origin
+        # still sends nothing to any other site.
+        response.headers["Referrer-Policy"] = "same-origin"
         response.headers["Cross-Origin-Resource-Policy"] = "same-origin"
         return response

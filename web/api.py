@@ -145,8 +145,9 @@ def explain():
     match = params.integer("match")
     if match is None:
         raise params.BadRequest("give match=ID, the result to explain")
+    mode = params.text("mode", 20) or "centred"  # Archive.explain refuses modes it does not know (400)
     with h.lock:
-        out = h.archive.explain(query, match, layer=params.layer(h.archive.layer_names), box=params.box())
+        out = h.archive.explain(query, match, layer=params.layer(h.archive.layer_names), box=params.box(), mode=mode)
         match_row = h.archive.item(match)
     for channel in out["channels"]:
         for e in channel["exemplars"]:

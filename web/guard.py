@@ -23,6 +23,16 @@ SAFE_METHODS = ("GET", "HEAD", "OPTIONS")
 FOREIGN_SITES = ("cross-site", "same-site")  # "same-site" includes other ports of 127.0.0.1
 
 
+def is_loopback(host: str) -> bool:
+    """Whether a listening address is this machine only (127.0.0.0/8, ::1, localhost)."""
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
 def split_host(value: str) -> tuple[str, int | None] | None:
     """'name:port', '[v6]:port', 'name' -> (lower-case name, port or None); None when malformed."""
     value = value.strip().lower()

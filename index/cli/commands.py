@@ -299,17 +299,21 @@ def serve(db, host, port, token, allow_hosts):
         _fail(exc)
     shown = f"[{host}]" if ":" in host else host
     click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + (f"?token=..." if token else ""))
-    reach = "Only this machine can reach it. " if is_loopback(host) else ""
+    reach = ("Only this machine can reach it. " if is_loopback(host) else
+             "Other machines can reach it with the token; over plain HTTP the token and the images travel "
+             "unencrypted, so use a private network or an HTTPS proxy in front (see --allow-host). ")
     click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
     run_server(db, host, port, token, allow_hosts=allow_hosts)
 
 
 from .duplicates import duplicates_cmd, restore_cmd  # noqa: E402
+from .map import map_cmd  # noqa: E402
 from .roots import roots_cmd  # noqa: E402
 
 main.add_command(duplicates_cmd)
 main.add_command(restore_cmd)
 main.add_command(roots_cmd)
+main.add_command(map_cmd)
 
 
 if __name__ == "__main__":

@@ -10,6 +10,7 @@ import click
 from ..api import Archive, ArchiveError
 from .shared import DB_HELP
 from .shared import fail as _fail
+
 CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
                "size", "mtime", "sha256", "exact_group")
 
@@ -17,7 +18,7 @@ CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score",
 def to_csv(doc: dict) -> str:
     """One row per member, with its group id; `keeper` is 1 for the suggested keeper."""
     buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\n")
+    writer = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\r\n")  # RFC 4180: CRLF
     writer.writeheader()
     for g in doc["groups"]:
         for m in g["members"]:
@@ -34,21 +35,59 @@ def _summary(doc: dict) -> str:
             f"Suggested keeper: {doc['rules']['keeper']}.")
 
 
+def _plan_summary(doc: dict, path: str) -> str:
+    groups = doc["groups"]
+    excluded = sum(len(g["excluded"]) for g in groups)
+    return (f"Plan {path}: {len(groups)} groups reviewed, {excluded} files marked 'not a copy' (they stay).")
+
+
 def _print_moves(report: dict, err: bool) -> None:
     files = report["files"]
     if not files:
         click.echo("Nothing to move: no group has a non-keeper.", err=err)
         return
-    verb = {"planned": "would move", "moved": "moved", "skipped": "skipped"}
+    verb = {"planned": "would move", "moved": "moved", "skipped": "skipped", "not moved": "not moved",
+            "moving": "cut short"}
     for f in files:
         line = f"{verb[f['status']]:<10} {f['original']} -> {f['quarantined']}"
         click.echo(line + (f"  ({f['reason']})" if f["reason"] else ""), err=err)
-    if report["apply"]:
+    planned = sum(f["status"] == "planned" for f in files)
+    if not report["apply"]:
+        click.echo(f"Dry run: nothing was moved ({planned} of {len(files)} files would move). "
+                   "Add --apply to move them.", err=err)
+    elif report["manifest"]:
         moved = sum(f["status"] == "moved" for f in files)
         click.echo(f"{moved} of {len(files)} files moved; manifest: {report['manifest']}", err=err)
+        if report.get("manifest_note"):
+            click.echo(f"The manifest's final copy could not be written ({report['manifest_note']}); the journal "
+                       "beside it records every move, and restore reads it.", err=err)
         click.echo(f"Undo with: kinscope restore {report['manifest']} --apply", err=err)
     else:
-        click.echo(f"Dry run: nothing was moved ({len(files)} files planned). Add --apply to move them.", err=err)
+        click.echo("Nothing was moved: no file could be moved safely (reasons above).", err=err)
+
+
+def _check_writable(path: str) -> None:
+    """Refuse an --output file that cannot be written, before anything moves (its contents are kept)."""
+    try:
+        with open(path, "a", encoding="utf-8"):
+            pass
+    except OSError as exc:
+        _fail(f"cannot write {path}: {exc.strerror or exc}; nothing was moved")
+
+
+def _explain(ctx, _param, value) -> None:
+    if not value or ctx.resilient_parsing:
+        return
+    click.echo(Archive.threshold_derivation())
+    ctx.exit(0)
+
+
+def _read_text(path: str) -> str:
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return fh.read()
+    except (OSError, UnicodeDecodeError) as exc:
+        _fail(f"cannot read the plan {path}: {getattr(exc, 'strerror', None) or exc}")
 
 
 @click.command("duplicates")
@@ -65,25 +104,50 @@ def _print_moves(report: dict, err: bool) -> None:
 @click.option("--move-to", type=click.Path(file_okay=False),
               help="Quarantine folder (outside every indexed folder) for the non-keepers; a dry run unless --apply.")
 @click.option("--apply", is_flag=True, help="With --move-to: really move the files and write the manifest.")
+@click.option("--prefer", multiple=True, type=click.Path(file_okay=False),
+              help="A folder whose copies the keeper rule prefers (repeatable; the first given wins).")
+@click.option("--plan", "plan_path", type=click.Path(exists=True, dir_okay=False),
+              help="With --move-to: move what this review plan (JSON or CSV from the /duplicates page) says, "
+              "instead of the suggested keepers of a new run.")
+@click.option("--explain-threshold", is_flag=True, is_eager=True, expose_value=False, callback=_explain,
+              help="Print how the default thresholds were derived (which data, which rule) and exit.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar and no summary line.")
-def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, quiet):
+def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, prefer, plan_path, quiet):
     """Find exact and near duplicate groups; print them as JSON or CSV. Never deletes anything."""
     if apply and not move_to:
         _fail("--apply only goes with --move-to DIR")
+    if plan_path and not move_to:
+        _fail("--plan goes with --move-to DIR (add --apply to move the files)")
+    if plan_path and report_path:
+        _fail("--report goes with a new run, not with --plan (the plan was made on the review page)")
+    if apply and output:
+        _check_writable(output)
+    on_stdout = output is None
+    stopped = None
     try:
         with Archive.open(db) as archive:
-            doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet)
+            if plan_path:
+                doc = archive.duplicate_plan(text=_read_text(plan_path))
+            else:
+                doc = archive.duplicates(layer=layer, threshold=threshold, normalised=not raw, progress=not quiet,
+                                         prefer=list(prefer))
             if report_path:  # before any move, so the thumbnails come from where the files are now
                 try:
                     archive.write_review_page(doc, report_path)
                 except OSError as exc:
                     _fail(f"cannot write the report {report_path}: {exc.strerror or exc}")
             if move_to:
-                doc["quarantine"] = archive.quarantine(doc, move_to, apply=apply)
+                try:
+                    doc["quarantine"] = archive.quarantine(doc, move_to, apply=apply)
+                except ArchiveError as exc:
+                    if getattr(exc, "report", None) is None:  # nothing moved: say why and stop
+                        raise
+                    doc["quarantine"], stopped = exc.report, exc  # stopped after some moves: report them first
     except ArchiveError as exc:
         _fail(exc)
-    on_stdout = output is None
-    text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else to_csv(doc)
+    if move_to:
+        _print_moves(doc["quarantine"], err=on_stdout)  # before the output: what moved is said whatever follows
+    text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else (Archive.plan_csv(doc) if plan_path else to_csv(doc))
     if on_stdout:
         click.echo(text, nl=False)
     else:
@@ -91,11 +155,14 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
             with open(output, "w", encoding="utf-8", newline="") as fh:
                 fh.write(text)
         except OSError as exc:
-            _fail(f"cannot write {output}: {exc.strerror or exc}")
-    if move_to:
-        _print_moves(doc["quarantine"], err=on_stdout)
+            moved = (doc.get("quarantine") or {}).get("manifest")
+            _fail(f"cannot write {output}: {exc.strerror or exc}"
+                  + (f"; the moves above were made, undo them with: kinscope restore {moved} --apply" if moved else ""))
+    if stopped:
+        _fail(stopped)
     if not quiet:
-        click.echo(_summary(doc) + (f" Written to {output}." if output else "")
+        summary = _plan_summary(doc, plan_path) if plan_path else _summary(doc)
+        click.echo(summary + (f" Written to {output}." if output else "")
                    + (f" Review page: {report_path}." if report_path else ""), err=on_stdout)
 
 
@@ -112,9 +179,13 @@ def restore_cmd(manifest, apply, as_json):
     if as_json:
         click.echo(json.dumps(report, indent=2))
     else:
+        for problem in report["problems"]:
+            click.echo(f"note: {problem}")
         for f in report["files"]:
             line = f"{f['status']:<16} {f['quarantined']} -> {f['original']}"
             click.echo(line + (f"  ({f['reason']})" if f["reason"] else ""))
+        if not report["files"]:
+            click.echo("Nothing to restore: the manifest records no moved file.")
         if not apply:
             click.echo("Dry run: nothing was moved. Add --apply to restore.")
     refused = sum(f["status"] == "refused" for f in report["files"])

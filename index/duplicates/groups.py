@@ -1,215 +1,96 @@
 """Near-duplicate detection: exact copies by content hash, near copies by descriptor similarity.
 
 Plain functions over numpy arrays (shapes checked), plus `from_archive`, which pulls ids, descriptors
-and catalog rows out of an archive's catalog and stores. Nothing here reads, moves or deletes image files.
-The rules (grouping, keeper, normalisation) and the calibration are explained in docs/duplicates.md.
+and catalog rows out of an archive's catalog and stores. Nothing here moves or deletes image files; the keeper rule
+(index/duplicates/keeper.py) examines the files of group members only. The rules (grouping, keeper,
+normalisation) and the calibration are explained in docs/duplicates.md.
 """
 from __future__ import annotations
 
-import os
-
 import numpy as np
 
-# --- calibrated defaults: measured with scripts/bench_duplicates.py, table in docs/duplicates.md -----------
-DEFAULT_LAYER = "objects"
-# Normalised score (see `normalise`) at which two items count as near duplicates, per preset layer.
-DEFAULT_THRESHOLDS = {"objects": 0.25, "parts": 0.06}
-DEFAULT_THRESHOLD = DEFAULT_THRESHOLDS[DEFAULT_LAYER]
-# Raw cosine a pair must also reach with the normalised score: in a small archive the background is
-# estimated from few items and runs low; this floor cost no recall on the benchmark's standard families.
-MIN_COSINE = {"objects": 0.75, "parts": 0.95}
-# The settings the calibration holds for; for others the user must give a threshold.
-CALIBRATED_FOR = {"backbone": "efficientnet_lite0", "gem_p": 3.0, "whitened": False}
+from . import keeper as keeper_rule
+from .background import (BACKGROUND_CEILING_MADS, BACKGROUND_RANK, BACKGROUND_SAMPLE,  # noqa: F401 (re-exported)
+                             LOCAL_RANK, background, normalise, screened)
+from .background import RULE as NORMALISATION_RULE
+from .calibration import record as calibration_record
+from .calibration import CALIBRATED_FOR, DEFAULT_LAYER, DEFAULT_THRESHOLD, DEFAULT_THRESHOLDS, MIN_COSINE  # noqa: F401
+from .candidates import EXACT_SEARCH_MAX, NEIGHBOURS, candidate_pairs, projection  # noqa: F401 (re-exported)
 
-# --- search parameters ------------------------------------------------------------------------------------
-NEIGHBOURS = 32  # candidate neighbours per item; a group holds at most NEIGHBOURS + 1 items
-BACKGROUND_SAMPLE = 500  # random reference sample measuring each item's background (about the benchmark's size)
-BACKGROUND_RANK = 10  # background = similarity to the item's BACKGROUND_RANK-th neighbour in that sample ...
-BACKGROUND_CEILING_MADS = 5.0  # ... but at most median + 5 MAD of its similarities to the sample
-EXACT_SEARCH_MAX = 5_000  # up to this many items: exact inner-product search; above: IVF (approximate)
-IVF_TRAIN_PER_LIST = 40  # k-means training points per inverted list (2 sqrt(n) lists)
-IVF_NPROBE = 8  # inverted lists visited per query
-PCA_DIM = 64  # above EXACT_SEARCH_MAX the candidate search runs on a PCA projection; final scores are exact
-PCA_SAMPLE = 10_000  # rows the projection is learned from
 PAIRS_MAX_MEMBERS = 64  # groups larger than this (only exact ones can be) list no pairwise scores
-CHUNK = 4096  # queries per search call (progress granularity and memory bound)
+SECOND_LINKS = 2  # an item no centre took joins a group where it passes against this many members
 
-KEEPER_RULE = "largest pixel count, then oldest modification time, then shortest path"
+KEEPER_RULE = keeper_rule.RULE
 EXACT_RULE = "exact: files with the same SHA-256 content hash (byte-identical)"
 NEAR_RULE = (
     "near: star groups. Items are taken as centres in order of how many neighbours score at or above the "
     "threshold (ties: higher summed score, then lower id); a centre's group is the centre plus every "
-    "not-yet-grouped neighbour scoring at or above the threshold against the centre itself. Every member "
-    "is linked directly to its centre, so no chain of pairwise links can join unrelated images. Byte-identical "
-    "copies take part once, through their exact group's keeper."
+    "not-yet-grouped neighbour scoring at or above the threshold against the centre itself. Then an item "
+    "no group took joins the group in which it scores at or above the threshold against at least two "
+    "members. Every member is thus linked to the centre, or to two members linked to it, so no chain of "
+    "single links can join unrelated images. Byte-identical copies take part once, through their exact "
+    "group's keeper."
 )
-NORMALISATION_RULE = (
-    "normalised score = cosine - (b1 + b2) / 2, with b1, b2 the two items' backgrounds; an item's background "
-    "is its cosine similarity to its {rank}th most similar item in a random sample of {sample} archive items, "
-    "capped at the median + {z:g} MAD of its similarities to that sample (0 = as similar as its usual "
-    "look-alikes; the score says by how much a pair stands out above them)"
-).format(rank=BACKGROUND_RANK, sample=BACKGROUND_SAMPLE, z=BACKGROUND_CEILING_MADS)
 
 
 class DuplicatesError(ValueError):
     """A request the user must change (unknown layer, uncalibrated settings, bad threshold)."""
 
 
-def _f32(x: np.ndarray) -> np.ndarray:
-    return np.ascontiguousarray(x, dtype=np.float32)
-
-
-def _bar(total: int, desc: str, progress: bool):
-    from tqdm import tqdm
-
-    return tqdm(total=total, desc=desc, unit="item", disable=not progress, leave=False, dynamic_ncols=True)
-
-
-def _threads() -> None:
-    import faiss
-
-    faiss.omp_set_num_threads(max(1, os.cpu_count() or 1))
-
-
-# --- background and score normalisation -----------------------------------------------------------------
-def background(vectors: np.ndarray, *, sample: int = BACKGROUND_SAMPLE, rank: int = BACKGROUND_RANK,
-               ceiling_mads: float = BACKGROUND_CEILING_MADS, seed: int = 0, progress: bool = False) -> np.ndarray:
-    """(n, d) -> (n,): how similar each row's usual look-alikes are.
-
-    A random reference sample of the rows stands in for a set of distractors (most of it is unrelated
-    to any given item). An item's background is its similarity to its rank-th most similar sample
-    member, but never above median + ceiling_mads * MAD of its similarities to the sample (MAD scaled
-    to a standard deviation): the item's own copies are outliers of that distribution, so however
-    many of them fall into the sample they cannot raise the background beyond that robust ceiling.
-    With fewer than `sample` + 1 rows, every other row is in the sample.
-    """
-    n, d = vectors.shape
-    if n < 2:
-        return np.zeros(n, np.float32)
-    x = _f32(vectors)
-    rng = np.random.default_rng(seed)
-    ref = np.arange(n) if n <= sample + 1 else np.sort(rng.choice(n, sample, replace=False))
-    in_ref = np.zeros(n, bool)
-    in_ref[ref] = True
-    r = int(min(rank, len(ref) - 1))
-    out = np.empty(n, np.float32)
-    with _bar(n, "background similarity", progress) as bar:
-        for start in range(0, n, CHUNK):
-            rows = np.arange(start, min(start + CHUNK, n))
-            sims = x[rows] @ x[ref].T
-            own = in_ref[rows]
-            if own.any():  # an item is not its own background: drop its own entry from its row
-                mine = sims[own]
-                mine[ref[None, :] == rows[own][:, None]] = -np.inf
-                out[rows[own]] = _background_rows(-np.sort(-mine, axis=1)[:, :-1], r, ceiling_mads)
-            if not own.all():
-                out[rows[~own]] = _background_rows(sims[~own], r, ceiling_mads)
-            bar.update(len(rows))
-    return out
-
-
-def _background_rows(sims: np.ndarray, rank: int, ceiling_mads: float) -> np.ndarray:
-    m = sims.shape[1]
-    lo, hi = (m - 1) // 2, m // 2  # the median is the mean of these two order statistics
-    part = np.partition(sims, sorted({m - rank, lo, hi}), axis=1)
-    top = part[:, m - rank]
-    med = 0.5 * (part[:, lo] + part[:, hi])
-    mad = 1.4826 * np.median(np.abs(sims - med[:, None]), axis=1)
-    return np.minimum(top, med + ceiling_mads * mad)
-
-
-def normalise(cosine: np.ndarray, background_a: np.ndarray, background_b: np.ndarray) -> np.ndarray:
-    """Pair scores against the background: cosine - (b_a + b_b) / 2.
-
-    0 means "as similar as these items' usual look-alikes"; positive values say by how much the pair
-    stands out above them. See docs/duplicates.md.
-    """
-    assert cosine.shape == background_a.shape == background_b.shape, "pair arrays must have one shape"
-    return (cosine - 0.5 * (background_a + background_b)).astype(np.float32)
-
-
-# --- candidate pairs ------------------------------------------------------------------------------------
-def projection(vectors: np.ndarray, dim: int = PCA_DIM, *, seed: int = 0) -> np.ndarray:
-    """(d, dim) orthonormal basis close to the top principal directions of the rows (uncentred, so inner
-    products of projections approximate inner products of the rows), learned on a sample by subspace
-    iteration (a randomised range finder, Halko, Martinsson and Tropp, SIAM Review 2011)."""
-    n, d = vectors.shape
-    dim = min(dim, d)
-    rng = np.random.default_rng(seed)
-    sample = _f32(vectors[np.sort(rng.choice(n, min(n, PCA_SAMPLE), replace=False))])
-    moment = sample.T @ sample
-    q = _f32(rng.normal(size=(d, min(d, dim + 16))))
-    for _ in range(4):
-        q, _ = np.linalg.qr(moment @ q)
-    small = (q.T @ moment @ q).astype(np.float64)
-    eigval, eigvec = np.linalg.eigh(small)
-    return _f32(q @ eigvec[:, ::-1][:, :dim])
-
-
-def candidate_pairs(vectors: np.ndarray, threshold: float, bg: np.ndarray | None = None, *,
-                    min_cosine: float = -1.0, k: int = NEIGHBOURS, exact_max: int = EXACT_SEARCH_MAX, seed: int = 0,
-                    progress: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Pairs (i < j) among each row's k most similar rows whose score is >= threshold (and cosine >= min_cosine).
-
-    vectors (n, d) are L2-normalised; score = cosine, or normalise(cosine, bg[i], bg[j]) when the
-    background bg (n,) is given. Returns positions i, j, the score and the cosine, all exact.
-    Up to `exact_max` rows the neighbours come from an exact inner-product search. Above it, from a
-    FAISS IVF index over a PCA projection built for this job (approximate: a true neighbour can be
-    missed); a candidate is then rescored exactly when the projection plus the Cauchy-Schwarz bound
-    on the discarded part (|x.y - Px.Py| <= |x - Px| |y - Py|) could reach the threshold.
-    """
-    import faiss
-
-    n, d = vectors.shape
-    if bg is not None:
-        assert bg.shape == (n,), f"expected {n} background values, got {bg.shape}"
-    k = int(min(k, n - 1))
-    empty = (np.zeros(0, np.int64),) * 2 + (np.zeros(0, np.float32),) * 2
-    if k <= 0:
-        return empty
-    _threads()
-    x = _f32(vectors)
-    half_bg = np.zeros(n, np.float32) if bg is None else _f32(bg) / 2
-    if n <= exact_max:
-        index, y, resid = faiss.IndexFlatIP(d), x, np.zeros(n, np.float32)
-        index.add(x)
-    else:
-        basis = projection(x, seed=seed)
-        y = _f32(x @ basis)
-        resid = np.sqrt(np.maximum((x * x).sum(1) - (y * y).sum(1), 0)).astype(np.float32)
-        nlist = int(min(4096, max(64, 2 * np.sqrt(n))))
-        rng = np.random.default_rng(seed)
-        index = faiss.IndexIVFFlat(faiss.IndexFlatIP(y.shape[1]), y.shape[1], nlist, faiss.METRIC_INNER_PRODUCT)
-        index.cp.niter, index.cp.seed, index.cp.min_points_per_centroid = 10, seed, 1
-        index.train(y[np.sort(rng.choice(n, min(n, nlist * IVF_TRAIN_PER_LIST), replace=False))])
-        index.add(y)
-        index.nprobe = min(IVF_NPROBE, nlist)
-    out_i, out_j, out_s, out_c = [], [], [], []
-    with _bar(n, "near-duplicate search", progress) as bar:
-        for start in range(0, n, CHUNK):
-            rows = np.arange(start, min(start + CHUNK, n))
-            approx, cand = index.search(y[rows], k + 1)
-            i = np.repeat(rows, cand.shape[1])
-            j = cand.ravel()
-            a = approx.ravel()
-            ok = (j >= 0) & (j != i)
-            i, j, a = i[ok], j[ok], a[ok]
-            need = threshold + half_bg[i] + half_bg[j]
-            bound = a + resid[i] * resid[j]  # for exact search resid = 0: the test is exact
-            maybe = (bound >= need) & (bound >= min_cosine)
-            i, j = i[maybe], j[maybe]
-            cos = np.einsum("nd,nd->n", x[i], x[j]) if len(i) else np.zeros(0, np.float32)
-            score = cos if bg is None else normalise(cos, bg[i], bg[j])
-            keep = (score >= threshold) & (cos >= min_cosine)
-            out_i.append(i[keep]); out_j.append(j[keep]); out_s.append(score[keep]); out_c.append(cos[keep])
-            bar.update(len(rows))
-    i, j, s, c = (np.concatenate(v) for v in (out_i, out_j, out_s, out_c))
-    a, b = np.minimum(i, j), np.maximum(i, j)
-    _, first = np.unique(a * n + b, return_index=True)
-    return a[first], b[first], s[first].astype(np.float32), np.clip(c[first], -1, 1).astype(np.float32)
-
-
 # --- grouping --------------------------------------------------------------------------------------------
+def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True, min_cosine: float | None = None,
+               k: int = NEIGHBOURS, exact_max: int = EXACT_SEARCH_MAX, seed: int = 0,
+               progress: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+    """Pairs (i < j) that count as near duplicates, their scores, and the background (None for raw cosine).
+
+    The neighbour search runs once at the cosine floor and also gives each item's LOCAL_RANK-th nearest
+    similarity; the background (dup_background.screened) is computed from those, then each pair is scored.
+    """
+    x = np.ascontiguousarray(vectors, dtype=np.float32)
+    floor = -1.0 if min_cosine is None else float(min_cosine)
+    if not normalised:
+        a, b, s, _ = candidate_pairs(x, threshold, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
+                                     progress=progress)
+        return a, b, s, None
+    a, b, _, cos, local = candidate_pairs(x, floor, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
+                                          kth=LOCAL_RANK, progress=progress)
+    bg, _ = screened(x, a, b, cos, local, seed=seed, progress=progress)
+    s = normalise(cos, bg[a], bg[b])
+    keep = s >= threshold
+    return a[keep], b[keep], s[keep], bg
+
+
+def near_groups(n: int, i: np.ndarray, j: np.ndarray, s: np.ndarray,
+                links: int = SECOND_LINKS) -> list[tuple[int, np.ndarray]]:
+    """Star groups (star_groups), then every item no group took joins the group in which it has an edge
+    to at least `links` members (the most such edges; ties: higher summed score, then lower group)."""
+    groups = star_groups(n, i, j, s)
+    if not groups or links < 1:
+        return groups
+    gid = np.full(n, -1, np.int64)
+    for g, (_, members) in enumerate(groups):
+        gid[members] = g
+    a, b, w = np.concatenate([i, j]), np.concatenate([j, i]), np.concatenate([s, s]).astype(np.float64)
+    loose = (gid[a] < 0) & (gid[b] >= 0)  # edges from an ungrouped item into a group
+    a, g, w = a[loose], gid[b[loose]], w[loose]
+    if len(a) == 0:
+        return groups
+    key = a * len(groups) + g
+    uniq, inv = np.unique(key, return_inverse=True)
+    count = np.bincount(inv)
+    total = np.bincount(inv, weights=w)
+    item, group = uniq // len(groups), uniq % len(groups)
+    order = np.lexsort((group, -total, -count, item))  # per item: most edges, then summed score, then group
+    item, group, count = item[order], group[order], count[order]
+    first = np.r_[True, item[1:] != item[:-1]]
+    joins = first & (count >= links)
+    extra: dict[int, list[int]] = {}
+    for it, gr in zip(item[joins].tolist(), group[joins].tolist()):
+        extra.setdefault(gr, []).append(it)
+    return [(c, np.concatenate([m, np.array(extra.get(g, []), np.int64)]) if g in extra else m)
+            for g, (c, m) in enumerate(groups)]
+
+
 def star_groups(n: int, i: np.ndarray, j: np.ndarray, s: np.ndarray) -> list[tuple[int, np.ndarray]]:
     """Edges (i, j, score) among n items -> [(centre, members)], members including the centre.
 
@@ -245,31 +126,18 @@ def star_groups(n: int, i: np.ndarray, j: np.ndarray, s: np.ndarray) -> list[tup
     return groups
 
 
-def keeper_key(row: dict) -> tuple:
-    """Sort key of the keeper rule: largest pixel count, then oldest mtime, then shortest path."""
-    pixels = (row.get("width") or 0) * (row.get("height") or 0)
-    mtime = row.get("mtime")
-    return (-pixels, mtime if mtime is not None else float("inf"), len(row["path"]), row["path"])
+def choose_keeper(rows: list[dict], *, rule: keeper_rule.KeeperRule | None = None, pixels: bool = True) -> int:
+    """Index into `rows` of the item the keeper rule keeps (index/duplicates/keeper.py; reads the members' files)."""
+    return (rule or keeper_rule.KeeperRule()).choose(rows, pixels=pixels)[0]
 
 
-def choose_keeper(rows: list[dict]) -> int:
-    """Index into `rows` of the item the keeper rule keeps."""
-    return min(range(len(rows)), key=lambda r: keeper_key(rows[r]))
-
-
-def keeper_reason(rows: list[dict], keep: int) -> str:
-    """Which step of the keeper rule decided, against the runner-up."""
-    others = [r for n, r in enumerate(rows) if n != keep]
-    if not others:
-        return "only member"
-    k, runner = keeper_key(rows[keep]), min(keeper_key(r) for r in others)
-    if k[0] != runner[0]:
-        return "largest pixel count"
-    if k[1] != runner[1]:
-        return "same pixel count; oldest modification time"
-    if k[2] != runner[2]:
-        return "same pixel count and modification time; shortest path"
-    return "equal on every rule; first path in alphabetical order"
+def keeper_reason(rows: list[dict], keep: int | None = None, *, rule: keeper_rule.KeeperRule | None = None,
+                  pixels: bool = True) -> str:
+    """Why the rule's keeper won: the step that decided, against the member(s) that step set aside.
+    `keep` (optional) must be the rule's choice; it is checked."""
+    chosen, reason, _ = (rule or keeper_rule.KeeperRule()).choose(rows, pixels=pixels)
+    assert keep is None or keep == chosen, f"the keeper rule chooses {chosen}, not {keep}"
+    return reason
 
 
 def exact_groups(hashes: list[str | None]) -> list[list[int]]:
@@ -284,11 +152,14 @@ def exact_groups(hashes: list[str | None]) -> list[list[int]]:
 # --- the job ---------------------------------------------------------------------------------------------
 def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: float = DEFAULT_THRESHOLD,
          normalised: bool = True, min_cosine: float | None = None, k: int = NEIGHBOURS,
-         exact_max: int = EXACT_SEARCH_MAX, progress: bool = False, layer: str | None = None) -> dict:
+         exact_max: int = EXACT_SEARCH_MAX, progress: bool = False, layer: str | None = None,
+         prefer: list[str] | None = None) -> dict:
     """Group ids by content hash and by descriptor similarity; returns the document of groups.
 
-    ids (n,), vectors (n, d) L2-normalised, rows: n dicts with path, width, height, mtime, size, sha256.
+    ids (n,), vectors (n, d) L2-normalised, rows: n dicts with path, width, height, mtime, size, sha256
+    (and captured_at). `prefer`: folders whose members the keeper rule prefers, in order.
     """
+    rule = keeper_rule.KeeperRule(prefer)
     n, d = vectors.shape
     assert ids.shape == (n,), f"expected {n} ids, got shape {ids.shape}"
     assert len(rows) == n, f"expected {n} rows, got {len(rows)}"
@@ -300,26 +171,26 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
     exact = exact_groups([r.get("sha256") for r in rows])
     representative = np.ones(n, bool)
     exact_of: dict[int, int] = {}  # position of an exact keeper -> index of its group in `groups`
-    for positions in exact:
-        keep = positions[choose_keeper([rows[p] for p in positions])]
+    for positions in exact:  # byte-identical: the pixels are the same, only the files' standing differs
+        keep, why, ev = rule.choose([rows[p] for p in positions], pixels=False)
+        keep = positions[keep]
         representative[[p for p in positions if p != keep]] = False
         exact_of[keep] = len(groups)
-        groups.append(_group("exact", keep, keep, positions, ids, vectors, rows, None))
+        groups.append(_group("exact", keep, keep, positions, ids, vectors, rows, None, why, ev))
 
     reps = np.flatnonzero(representative)
-    x = _f32(vectors[reps])
     bg = None
     if len(reps) >= 2:
-        if normalised:
-            bg_reps = background(x, progress=progress)
+        a, b, s, bg_reps = near_edges(vectors[reps], threshold, normalised=normalised, min_cosine=min_cosine,
+                                      k=k, exact_max=exact_max, progress=progress)
+        if bg_reps is not None:
             bg = np.zeros(n, np.float32)
             bg[reps] = bg_reps
-        a, b, s, _ = candidate_pairs(x, threshold, bg_reps if normalised else None, k=k, exact_max=exact_max,
-                                     min_cosine=-1.0 if min_cosine is None else min_cosine, progress=progress)
-        for centre, members in star_groups(len(reps), a, b, s):
+        for centre, members in near_groups(len(reps), a, b, s):
             positions = reps[members].tolist()
-            keep = positions[choose_keeper([rows[p] for p in positions])]
-            groups.append(_group("near", keep, int(reps[centre]), positions, ids, vectors, rows, bg))
+            keep, why, ev = rule.choose([rows[p] for p in positions], pixels=True)
+            keep = positions[keep]
+            groups.append(_group("near", keep, int(reps[centre]), positions, ids, vectors, rows, bg, why, ev))
     for g in groups:  # tie a near group to the exact groups of its members
         if g["kind"] == "near":
             for m in g["members"]:
@@ -344,7 +215,7 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
         "score": "normalised" if normalised else "cosine",
         "threshold": float(threshold),
         "min_cosine": None if min_cosine is None else float(min_cosine),
-        "rules": {"exact": EXACT_RULE, "near": NEAR_RULE, "keeper": KEEPER_RULE,
+        "rules": {"exact": EXACT_RULE, "near": NEAR_RULE, "keeper": rule.text,
                   "score": (NORMALISATION_RULE if normalised else "score = cosine similarity of the descriptors")
                   + (f"; a near pair must also have cosine >= {min_cosine:g}" if min_cosine is not None else "")},
         "counts": {"images": int(n), "groups": len(out), "exact": sum(g["kind"] == "exact" for g in out),
@@ -353,8 +224,10 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
     }
 
 
-def _group(kind, keep, centre, positions, ids, vectors, rows, bg) -> dict:
-    """One group's record; member scores are against the keeper, `pairs` lists every pair."""
+def _group(kind, keep, centre, positions, ids, vectors, rows, bg, reason, evidence) -> dict:
+    """One group's record; member scores are against the keeper, `pairs` lists every pair, and each
+    member carries the keeper rule's evidence about it (`evidence`: in the order of `positions`)."""
+    evidence_of = dict(zip(positions, evidence))
     keep_first = [keep] + sorted((p for p in positions if p != keep), key=lambda p: rows[p]["path"])
     v = vectors[keep_first]
     cos = np.clip(v @ v.T, -1.0, 1.0)
@@ -370,20 +243,19 @@ def _group(kind, keep, centre, positions, ids, vectors, rows, bg) -> dict:
                         "cosine": round(1.0 if kind == "exact" else float(cos[0, r]), 4),
                         "width": rows[p].get("width"), "height": rows[p].get("height"),
                         "size": rows[p].get("size"), "mtime": rows[p].get("mtime"), "sha256": rows[p].get("sha256"),
-                        "_pos": p})
+                        "evidence": evidence_of[p].as_dict(), "_pos": p})
     pairs = None
     if len(keep_first) <= PAIRS_MAX_MEMBERS:
         pairs = [{"a": int(ids[keep_first[x]]), "b": int(ids[keep_first[y]]),
                   "score": 1.0 if kind == "exact" else round(float(used[x, y]), 4),
                   "cosine": 1.0 if kind == "exact" else round(float(cos[x, y]), 4)}
                  for x in range(len(keep_first)) for y in range(x + 1, len(keep_first))]
-    reason = keeper_reason([rows[p] for p in keep_first], 0)
     return {"id": None, "kind": kind, "keeper": int(ids[keep]), "keeper_reason": reason, "centre": int(ids[centre]),
             "members": members, "pairs": pairs}
 
 
 # --- an archive's side ------------------------------------------------------------------------------------
-ROW_COLUMNS = ("id", "path", "width", "height", "mtime", "size", "sha256")
+ROW_COLUMNS = ("id", "path", "width", "height", "mtime", "size", "sha256", "captured_at")
 
 
 def all_vectors(store) -> tuple[np.ndarray, np.ndarray]:
@@ -435,17 +307,18 @@ def resolve_settings(manifest: dict, layer: str | None, threshold: float | None,
 
 
 def from_archive(catalog, reader, *, layer: str | None = None, threshold: float | None = None,
-                 normalised: bool = True, progress: bool = False) -> dict:
+                 normalised: bool = True, progress: bool = False, prefer: list[str] | None = None) -> dict:
     """Run the job over every embedded item of an archive on one layer: its catalog, and its stores as
     `reader` (index.vectors.reader.Reader) reads them."""
-    layer, threshold, floor = resolve_settings(reader.manifest, layer, threshold, normalised)
+    layer, chosen, floor = resolve_settings(reader.manifest, layer, threshold, normalised)
     stored_ids, vectors = all_vectors(reader.store(layer))
     rows = {r["id"]: r for r in catalog.db.query(
         f"select {', '.join(ROW_COLUMNS)} from images where status = 'ok'")}
     keep = np.array([int(i) in rows for i in stored_ids], bool)  # skip ids the catalog has not committed
     order = np.flatnonzero(keep)[np.argsort(stored_ids[keep], kind="stable")]  # catalog order: deterministic
     ids, vectors = stored_ids[order], vectors[order]
-    doc = find(ids, vectors, [rows[int(i)] for i in ids], threshold=threshold, normalised=normalised,
-               min_cosine=floor, progress=progress, layer=layer)
+    doc = find(ids, vectors, [rows[int(i)] for i in ids], threshold=chosen, normalised=normalised,
+               min_cosine=floor, progress=progress, layer=layer, prefer=prefer)
+    doc["calibration"] = calibration_record(layer) if threshold is None else None  # None: the user chose
     doc["db"] = str(reader.db)
     return doc

@@ -18,7 +18,12 @@ import numpy as np
 from ..common.errors import ArchiveError
 
 OPSET = 17
-EXPORT_FORMAT = 2  # 2: pooled outputs (descriptor, peak, position); bump when the exported graph changes
+EXPORT_FORMAT = 3  # 2: pooled outputs (descriptor, peak, position); 3: peaks from interior positions only
+#                   (PEAK_RING); bump when the exported graph changes
+# Channel peaks (what the exemplars keep) are taken away from the frame's outer ring of cells: zero
+# padding makes many channels fire there in every image (measured in docs/explain.md), so border
+# peaks show the frame, not content. The descriptor still pools the whole map.
+PEAK_RING = 1
 CACHE_DIR = "engines"
 META_KEY = "kinscope"  # ONNX metadata entry: {"layers": [...], "grids": {layer: [h, w]}, "p": ...}
 
@@ -45,6 +50,12 @@ def model_key(backbone_manifest: dict, nodes: list[str], p: float) -> str:
 
 def cached_model_path(cache_dir: Path, backbone_manifest: dict, nodes: list[str], p: float = 3.0) -> Path:
     return Path(cache_dir) / f"{backbone_manifest['name']}-{model_key(backbone_manifest, nodes, p)}.onnx"
+
+
+def interior(h: int, w: int) -> int:
+    """Cells left out on each side of an (h, w) grid when looking for channel peaks (none when the
+    grid is too small to have an interior)."""
+    return PEAK_RING if min(h, w) > 2 * PEAK_RING else 0
 
 
 def output_names(names: list[str]) -> list[str]:

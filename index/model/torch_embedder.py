@@ -30,7 +30,9 @@ class Embedder:
         self.layers = layers
         self.p = p
         self.size = backbone.input_size
+        self.model = model
         self.extractor = create_feature_extractor(model, return_nodes={l.node: l.name for l in layers}).eval()
+        self._extra: dict[tuple[str, ...], torch.nn.Module] = {}  # explanation taps -> their extractor
         self.reference = TorchEngine(self.extractor, [l.name for l in layers], p=p)
         self.cache_dir = Path(cache_dir) if cache_dir is not None else None
         self._mean = np.asarray(backbone.mean, np.float32)
@@ -96,6 +98,16 @@ class Embedder:
         """One image -> layer name -> (C, H, W) feature map as float32 numpy (torch, the reference)."""
         maps = self.feature_maps(self.preprocess(image)[None])
         return {name: fmap[0].numpy() for name, fmap in maps.items()}
+
+    def maps_at(self, images: list[Image.Image], nodes: tuple[str, ...]) -> dict[str, np.ndarray]:
+        """Images -> graph node -> (N, C, H, W) float32 feature maps (torch), for any nodes of the
+        backbone (explanations read a finer layer than the archive may keep); one forward pass."""
+        if nodes not in self._extra:
+            self._extra[nodes] = create_feature_extractor(self.model, return_nodes={n: n for n in nodes}).eval()
+        batch = np.stack([self.preprocess(im) for im in images])
+        with torch.inference_mode():
+            out = self._extra[nodes](torch.from_numpy(batch))
+        return {n: out[n].numpy() for n in nodes}
 
     def embed_images(self, images: list[Image.Image]) -> dict[str, np.ndarray]:
         return self.embed(np.stack([self.preprocess(im) for im in images]))

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from .onnx_engine import EXPORT_FORMAT, META_KEY, OPSET, EngineError, OnnxEngine, output_names
+from .onnx_engine import EXPORT_FORMAT, META_KEY, OPSET, EngineError, OnnxEngine, interior, output_names
 from .pooling import GEM_EPS, l2_normalize
 VERIFY_ATOL = 1e-5  # on L2-normalised descriptors of a random batch (the tests hold them to 1e-4)
 VERIFY_PEAK_ATOL = 1e-3  # on channel maxima (ReLU6 activations, 0..6)
@@ -24,7 +24,8 @@ VERIFY_PEAK_ATOL = 1e-3  # on channel maxima (ReLU6 activations, 0..6)
 
 def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:
     """Feature maps -> per layer the L2-normalised GeM descriptor (N, C), and each channel's peak
-    value (N, C), its flat position (N, C) and the grid (H, W).
+    value (N, C) away from the frame's outer ring (index.model.onnx_engine.PEAK_RING), its flat position in
+    the whole grid (N, C) and the grid (H, W).
 
     The arithmetic of index.model.pooling.gem (clamp at GEM_EPS, divide by the per-channel maximum, power,
     mean, root, rescale; bit for bit the same result), done in place: the maps are overwritten.
@@ -40,9 +41,10 @@ def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray]
         maps = {name: (m.clone() if m.untyped_storage().data_ptr() in shared else m) for name, m in maps.items()}
         for name, fmap in maps.items():
             n, c, h, w = fmap.shape
+            peak, where = interior_peaks(fmap)
+            peaks[name] = (peak.numpy(), where.numpy().astype(np.int64), (h, w))
             flat = fmap.contiguous().reshape(n, c, h * w)
-            values, where = flat.max(dim=2)
-            peaks[name] = (values.numpy(), where.numpy().astype(np.int64), (h, w))
+            values = flat.amax(dim=2)
             x = flat.clamp_min_(GEM_EPS)
             if p == 1:
                 pooled = x.mean(dim=2)
@@ -51,6 +53,17 @@ def pool(maps: dict[str, torch.Tensor], p: float) -> tuple[dict[str, np.ndarray]
                 pooled = x.div_(scale).pow_(p).mean(dim=2).pow_(1.0 / p).mul_(scale.squeeze(2))
             descriptors[name] = l2_normalize(pooled.numpy())
     return descriptors, peaks
+
+
+def interior_peaks(fmap: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """(N, C, H, W) -> each channel's largest value away from the outer ring, and its flat position
+    in the whole (H, W) grid (slicing, not masking: it exports to ONNX as it is)."""
+    n, c, h, w = fmap.shape
+    r = interior(h, w)
+    inner = fmap[:, :, r:h - r, r:w - r]
+    values, where = inner.reshape(n, c, -1).max(dim=2)
+    iw = w - 2 * r
+    return values, (where // iw + r) * w + (where % iw + r)
 
 
 class TorchEngine:
@@ -90,8 +103,9 @@ class _Pooled(torch.nn.Module):
         results = []
         for name in self.names:
             fmap = out[name]
+            peak, where = interior_peaks(fmap)
             flat = fmap.reshape(fmap.shape[0], fmap.shape[1], -1)
-            values, where = flat.max(dim=2)
+            values = flat.amax(dim=2)
             clamped = flat.clamp(min=GEM_EPS)
             if self.p == 1:
                 pooled = clamped.mean(dim=2)
@@ -99,7 +113,7 @@ class _Pooled(torch.nn.Module):
                 scale = values.clamp(min=GEM_EPS).unsqueeze(2)
                 pooled = (clamped / scale).pow(self.p).mean(dim=2).pow(1.0 / self.p) * scale.squeeze(2)
             pooled = pooled / pooled.norm(dim=1, keepdim=True).clamp(min=1e-12)
-            results += [pooled, values, where]
+            results += [pooled, peak, where]
         return tuple(results)
 
 

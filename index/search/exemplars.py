@@ -1,4 +1,10 @@
-"""Per channel of a layer, the archive positions that excite it most (kept while indexing)."""
+"""Per channel of a layer, the archive positions that excite it most (kept while indexing).
+
+The positions come from the engines' channel peaks, which leave out the frame's outer ring of cells
+(index.model.onnx_engine.PEAK_RING): there zero padding excites many channels in every image, and the
+patches would show the frame instead of what the channel responds to in content. Files written before
+that rule (no `ring` entry) have their ring entries dropped when loaded.
+"""
 from __future__ import annotations
 
 import io
@@ -7,6 +13,7 @@ from pathlib import Path
 import numpy as np
 
 from ..common.files import atomic_write
+from ..model.onnx_engine import interior
 
 TOP_N = 8
 
@@ -49,7 +56,8 @@ class Exemplars:
 
     def save(self, path: Path) -> None:
         buf = io.BytesIO()
-        np.savez(buf, values=self.values, ids=self.ids, positions=self.positions, grid=np.array(self.grid))
+        np.savez(buf, values=self.values, ids=self.ids, positions=self.positions, grid=np.array(self.grid),
+                 ring=np.array(interior(*self.grid) if all(self.grid) else 0))
         atomic_write(Path(path), buf.getvalue())
 
     @classmethod
@@ -58,4 +66,19 @@ class Exemplars:
             obj = cls(data["values"].shape[0], data["values"].shape[1])
             obj.values, obj.ids, obj.positions = data["values"], data["ids"], data["positions"]
             obj.grid = tuple(int(v) for v in data["grid"])
+            legacy = "ring" not in data.files
+        if legacy and all(obj.grid):
+            obj.drop_ring()
         return obj
+
+    def drop_ring(self) -> None:
+        """Forget entries on the frame's outer ring (from files written before peaks left it out)."""
+        rows, cols = self.grid
+        r = interior(rows, cols)
+        row, col = np.divmod(self.positions, cols)
+        ring = (self.ids >= 0) & ((row < r) | (row >= rows - r) | (col < r) | (col >= cols - r))
+        self.values[ring], self.ids[ring], self.positions[ring] = -np.inf, -1, -1
+        order = np.argsort(-self.values, axis=1, kind="stable")
+        self.values = np.take_along_axis(self.values, order, 1)
+        self.ids = np.take_along_axis(self.ids, order, 1)
+        self.positions = np.take_along_axis(self.positions, order, 1)

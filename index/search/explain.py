@@ -1,99 +1,161 @@
-"""Why a pair matched: the exact split of a GeM cosine score over feature-map positions.
+"""Why a pair matched: the score split over positions, region pairs, and the channels that carried it.
 
-With GeM pooling (exponent p) of a feature map F (positions i, channels k) and L2-normalised pooled
-vectors q and d, the score is sum_k q_k d_k. Position i of the query receives
-    a_i = sum_k q_k d_k * F_ik^p / sum_j F_jk^p,
-so the a_i add up to the score exactly (for p = 1 this is the decomposition of average pooling in
-Stylianou, Souvenir and Pless, "Visualizing Deep Similarity Networks", WACV 2019). The same split
-applies to the matched image, and the product of both splits divides the score over pairs of
-positions (query cell, match cell), which gives region-to-region correspondences.
+The parts live in their own modules: index.search.explain_score (the exact split of the score over
+feature-map positions, with its formula), index.search.explain_pairs (region pairs from local features, with a
+geometric check) and index.search.explain_baseline (the archive's average image, which the split and the
+pairs are centred on). This module puts them together for Archive.explain.
+
+The pairs are read on a finer layer than the score when the backbone has one (PAIR_PRESET, the
+`texture` tap, stride 8): on the benchmark of docs/explain.md a stride-8 grid placed pairs right more
+often than the stride-16 `parts` grid, whichever layer the score is on.
 """
 from __future__ import annotations
 
 import numpy as np
-import torch
+from PIL import Image, ImageOps
 
-from ..model.pooling import GEM_EPS, gem
+from .explain_baseline import Baseline
+from .explain_pairs import match_regions
+from .explain_score import MAX_MAP_SIDE, MODES, block_sum, descriptor, split
 
-MAX_MAP_SIDE = 32  # heat maps are summed into at most this many cells per side (sums stay exact)
-MAX_PAIR_SIDE = 8  # correspondences are computed between cells of at most this grid
-
-
-def shares(fmap: np.ndarray, p: float) -> np.ndarray:
-    """(C, H, W) feature map -> (C, H*W): each position's share of each channel's GeM sum (rows sum to 1)."""
-    c, h, w = fmap.shape
-    x = np.maximum(fmap.reshape(c, h * w).astype(np.float64), GEM_EPS)
-    x = x / x.max(axis=1, keepdims=True)  # scale-free, and no overflow for large p
-    xp = x**p
-    return xp / xp.sum(axis=1, keepdims=True)
+PAIR_PRESET = "texture"
+PAIRS = 8  # region pairs offered
+CHANNELS = 6  # feature detectors listed
+PAIR_BOX_CELLS = 3  # a pair's region, in cells of the pair layer's grid (one cell is too small to see)
+EXEMPLARS = 4
 
 
-def descriptor(fmap: np.ndarray, p: float) -> np.ndarray:
-    """(C, H, W) -> (C,) L2-normalised GeM descriptor, computed exactly as at indexing time."""
-    with torch.inference_mode():
-        g = gem(torch.from_numpy(np.ascontiguousarray(fmap, dtype=np.float32))[None], p)[0].numpy()
-    return (g / max(np.linalg.norm(g), 1e-12)).astype(np.float64)
+class ExplainError(ValueError):
+    """A request the explanation cannot answer (Archive turns it into ArchiveError)."""
 
 
-def block_sum(grid: np.ndarray, max_side: int) -> np.ndarray:
-    """Sum a (..., H, W) array into at most max_side x max_side cells (totals are preserved)."""
-    h, w = grid.shape[-2:]
-    rows = np.linspace(0, h, min(h, max_side) + 1).astype(int)[:-1]
-    cols = np.linspace(0, w, min(w, max_side) + 1).astype(int)[:-1]
-    return np.add.reduceat(np.add.reduceat(grid, rows, axis=-2), cols, axis=-1)
-
-
-def cell_box(r: int, c: int, rows: int, cols: int) -> list[float]:
-    """Grid cell -> [x0, y0, x1, y1] as fractions of the image (the network sees the whole frame)."""
-    return [round(c / cols, 4), round(r / rows, 4), round((c + 1) / cols, 4), round((r + 1) / rows, 4)]
-
-
-def explain_pair(fq: np.ndarray, fd: np.ndarray, p: float, *, channels: int = 6, pairs: int = 5) -> dict:
-    """Split the cosine score of two feature maps (C, Hq, Wq) and (C, Hd, Wd) over positions and channels."""
-    cq, hq, wq = fq.shape
-    cd, hd, wd = fd.shape
-    assert cq == cd, f"the two feature maps have {cq} and {cd} channels"
-    q, d = descriptor(fq, p), descriptor(fd, p)
-    contrib = q * d  # channel k's part of the score
-    score = float(contrib.sum())
-    sq, sd = shares(fq, p), shares(fd, p)
-    heat_q = (contrib @ sq).reshape(hq, wq)
-    heat_d = (contrib @ sd).reshape(hd, wd)
-    top = np.argsort(-contrib)[:channels]
-    return {
-        "score": score,
-        "query_map": block_sum(heat_q, MAX_MAP_SIDE),
-        "match_map": block_sum(heat_d, MAX_MAP_SIDE),
-        "pairs": correspondences(sq.reshape(cq, hq, wq), sd.reshape(cd, hd, wd), contrib, pairs),
-        "channels": [
-            {"channel": int(k), "contribution": float(contrib[k]), "share": float(contrib[k] / score) if score else 0.0}
-            for k in top
-        ],
-    }
-
-
-def correspondences(sq: np.ndarray, sd: np.ndarray, contrib: np.ndarray, n: int) -> list[dict]:
-    """The n strongest (query cell, match cell) pairs, each cell used once; values sum to the score over all pairs."""
-    cq = block_sum(sq, MAX_PAIR_SIDE)  # (C, rq, cq) shares summed per cell
-    cd = block_sum(sd, MAX_PAIR_SIDE)
-    c, rq, kq = cq.shape
-    _, rd, kd = cd.shape
-    strength = cq.reshape(c, -1).T @ (contrib[:, None] * cd.reshape(c, -1))  # (cells_q, cells_d)
-    out, used_q, used_d = [], set(), set()
-    for flat in np.argsort(-strength, axis=None):
-        i, j = divmod(int(flat), strength.shape[1])
-        if i in used_q or j in used_d:
-            continue
-        used_q.add(i)
-        used_d.add(j)
-        out.append({
-            "query_box": cell_box(*divmod(i, kq), rq, kq),
-            "match_box": cell_box(*divmod(j, kd), rd, kd),
-            "value": float(strength[i, j]),
-        })
-        if len(out) == n:
-            break
+def explain_pair(fq: np.ndarray, fd: np.ndarray, p: float, mean: np.ndarray | None = None, *,
+                 channels: int = CHANNELS) -> dict:
+    """The score of two feature maps split over positions (see index.search.explain_score) and the channels
+    with the largest positive part of it; mean None: the raw cosine, else centred on `mean`."""
+    out = split(fq, fd, p, mean)
+    contrib, score = out.pop("contrib"), out["score"]
+    top = [int(k) for k in np.argsort(-contrib)[:channels] if contrib[k] > 0]
+    out["query_map"] = block_sum(out["query_map"], MAX_MAP_SIDE)
+    out["match_map"] = block_sum(out["match_map"], MAX_MAP_SIDE)
+    out["channels"] = [{"channel": k, "contribution": float(contrib[k]),
+                        "share": float(contrib[k] / score) if score > 0 else 0.0} for k in top]
     return out
+
+
+def box_mass(grid: np.ndarray, box) -> float:
+    """The part of a heat map (H, W) over the image that falls in box [x0, y0, x1, y1] (fractions),
+    each cell counted by the area it shares with the box."""
+    h, w = grid.shape
+    x0, y0, x1, y1 = box
+
+    def cover(n, a, b):
+        edges = np.arange(n + 1) / n
+        return np.clip(np.minimum(edges[1:], b) - np.maximum(edges[:-1], a), 0, None) * n
+
+    return float(cover(h, y0, y1) @ grid @ cover(w, x0, x1))
+
+
+def region_box(centre, grid: tuple[int, int], cells: int = PAIR_BOX_CELLS) -> list[float]:
+    """A box `cells` cells wide around a cell centre (fractions), moved inside the frame."""
+    rows, cols = grid
+    out = []
+    for v, n in ((centre[0], cols), (centre[1], rows)):
+        side = min(1.0, cells / n)
+        out.append(min(max(v - side / 2, 0.0), 1.0 - side))
+    x0, y0 = out
+    return [round(x0, 4), round(y0, 4), round(x0 + min(1.0, cells / cols), 4), round(y0 + min(1.0, cells / rows), 4)]
+
+
+def pairs_with_shares(regions: dict, grid_q, grid_d, query_map, match_map, score: float) -> list[dict]:
+    """The region pairs of explain_pairs.match_regions as boxes, each with the part of the score its
+    two regions hold (the mean of the query region's and the match region's heat)."""
+    out = []
+    for pair in regions["pairs"]:
+        qbox, mbox = region_box(pair["query"], grid_q), region_box(pair["match"], grid_d)
+        value = 0.5 * (box_mass(query_map, qbox) + box_mass(match_map, mbox))
+        out.append({"query_box": qbox, "match_box": mbox, "query_cell": [round(v, 4) for v in pair["query"]],
+                    "match_cell": [round(v, 4) for v in pair["match"]], "similarity": round(pair["similarity"], 4),
+                    "value": value, "share": value / score if score > 0 else 0.0})
+    return out
+
+
+def explain(archive, query, match: int, *, layer: str | None = None, box=None, mode: str = "centred") -> dict:
+    """Archive.explain (see there); `archive` is an index.api.Archive."""
+    if mode not in MODES:
+        raise ExplainError(f"mode must be one of {', '.join(MODES)}, got {mode!r}")
+    entry = archive._layer(layer)
+    name, p = entry["name"], archive.manifest["pooling"]["p"]
+    if archive.whitening(name):
+        raise ExplainError(f"layer {name} is PCA-whitened; its scores do not split over positions")
+    row = archive.item(int(match))
+    pair_node = archive.backbone.presets.get(PAIR_PRESET, entry["node"])
+    nodes = tuple(dict.fromkeys((entry["node"], pair_node)))
+    query_image = archive.query_image(query, box)
+    # One forward pass: the query, its mirror image (for the pairs only) and the match.
+    maps = archive.embedder.maps_at([query_image, ImageOps.mirror(query_image), archive.query_image(int(match))], nodes)
+    fq = {n: m[:2] for n, m in maps.items()}
+    fd = {n: m[2:] for n, m in maps.items()}
+    baseline = _baseline(archive)
+    store = archive.store(name)
+    mean, averaged = baseline.descriptor(name, archive.manifest.get("generation"), store)
+    centred = split(fq[entry["node"]][0], fd[entry["node"]][0], p, mean)["score"] if mean is not None else None
+    shown = mean if mode == "centred" else None
+    result = explain_pair(fq[entry["node"]][0], fd[entry["node"]][0], p, shown)
+    stored = store.reconstruct(np.array([int(match)]))[0]
+    result["indexed_score"] = float(descriptor(fq[entry["node"]][0], p) @ stored)
+    cell_mean, cell_images = baseline.cells(pair_node, store.ids(), lambda ids: _maps_of(archive, ids, pair_node))
+    regions = match_regions(fq[pair_node][0], fq[pair_node][1], fd[pair_node][0], cell_mean, n=PAIRS,
+                            spread=PAIR_BOX_CELLS)
+    grid_q, grid_d = fq[pair_node].shape[2:], fd[pair_node].shape[2:]
+    result["pairs"] = pairs_with_shares(regions, grid_q, grid_d, result["query_map"], result["match_map"],
+                                        result["score"])
+    result["pair_layer"] = {"name": _layer_name(archive, pair_node), "node": pair_node, "grid": list(grid_d),
+                            "mirrored": regions["mirrored"], "scale": round(regions["scale"], 3),
+                            "agreeing": regions["agreeing"], "candidates": regions["candidates"]}
+    _add_exemplars(archive, name, entry, result["channels"])
+    result["query_map"] = np.round(result["query_map"], 7).tolist()
+    result["match_map"] = np.round(result["match_map"], 7).tolist()
+    return {"layer": name, "mode": "centred" if shown is not None else "cosine", "centred": centred,
+            "baseline": {"descriptors": averaged, "cell_images": cell_images},
+            "match": {k: row[k] for k in ("id", "path", "width", "height")}, **result}
+
+
+def _baseline(archive) -> Baseline:
+    if getattr(archive, "_explain_baseline", None) is None:
+        archive._explain_baseline = Baseline(archive.db)
+    return archive._explain_baseline
+
+
+def _layer_name(archive, node: str) -> str:
+    """The archive's name for a graph node, else the backbone's preset name, else the node."""
+    for layer in archive.manifest["layers"]:
+        if layer["node"] == node:
+            return layer["name"]
+    presets = {v: k for k, v in archive.backbone.presets.items()}
+    return presets.get(node, node)
+
+
+def _maps_of(archive, ids: list[int], node: str) -> np.ndarray:
+    """Feature maps at `node` of archive items, those that can still be read."""
+    from ..common.errors import ArchiveError
+
+    images: list[Image.Image] = []
+    for i in ids:
+        try:
+            images.append(archive.query_image(int(i)))
+        except ArchiveError:
+            continue
+    return archive.embedder.maps_at(images, (node,))[node] if images else np.zeros((0, 1, 1, 1))
+
+
+def _add_exemplars(archive, name: str, entry: dict, channels: list[dict]) -> None:
+    exemplars = archive.exemplars(name)
+    alive = set(archive.catalog.get([e["id"] for c in channels for e in exemplars.top(c["channel"])]))
+    rows, cols = exemplars.grid
+    for c in channels:
+        c["exemplars"] = [{**e, "box": patch_box(*e["cell"], rows, cols, entry["stride"], archive.backbone.input_size)}
+                          for e in exemplars.top(c["channel"], alive)[:EXEMPLARS]]
 
 
 def patch_box(r: int, c: int, rows: int, cols: int, stride: int, input_size: int) -> list[float]:

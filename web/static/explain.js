@@ -1,6 +1,8 @@
-// The "why it matched" view: heat maps over both images (the exact split of the score over
-// feature-map cells), linked region pairs, and the feature detectors that carried the score.
-import { el, formatPercent, formatScore, whereIs } from "./common.js";
+// The "why it matched" view: the score and the similarity beyond the archive's average, heat maps over
+// both images (the exact split of one of them over feature-map cells), region pairs that show the same
+// content (stepped through with buttons or arrow keys), and the feature detectors that carried it.
+import { api, el, formatPercent, formatScore, whereIs } from "./common.js";
+import { pairSection, signedPercent } from "./explain-pairs.js";
 
 // Our own ramp, from "none of the score" to "the largest cell": deep teal, sea green, saffron, cream.
 const RAMP = [
@@ -53,7 +55,7 @@ function within(area, box) {
 
 /** One image with a canvas on top: heat map cells, region box, numbered pair boxes. */
 class Overlay {
-  constructor(img, canvas, { map, area, pairs, score, readout, who }) {
+  constructor(img, canvas, { map, area, pairs, score, readout, who, what }) {
     this.img = img;
     this.canvas = canvas;
     this.map = map;
@@ -62,6 +64,7 @@ class Overlay {
     this.score = score;
     this.readout = readout;
     this.who = who;
+    this.what = what;
     this.stats = mapStats(map);
     this.showHeat = true;
     this.showPairs = true;
@@ -90,8 +93,9 @@ class Overlay {
     const r = Math.min(this.stats.rows - 1, Math.floor(((fy - b0) / (b1 - b0)) * this.stats.rows));
     const c = Math.min(this.stats.cols - 1, Math.floor(((fx - a0) / (a1 - a0)) * this.stats.cols));
     const v = this.map[r][c];
-    const share = this.score ? v / this.score : 0;
-    this.readoutText(`this cell: ${v.toFixed(5)}, ${formatPercent(share)} of the score`);
+    this.readoutText(v < 0
+      ? `this cell: ${v.toFixed(5)}, below zero: it looks less like the other image than an average image does`
+      : `this cell: ${v.toFixed(5)}, ${signedPercent(this.score ? v / this.score : 0)} of ${this.what}`);
   }
 
   draw() {
@@ -175,7 +179,12 @@ class Overlay {
   }
 }
 
-function describeMap(stats, area, score, who) {
+/** What the heat maps add up to, in words, for each mode. */
+function scoreWords(mode) {
+  return mode === "centred" ? "the similarity beyond the archive's average" : "the score";
+}
+
+function describeMap(stats, area, data, who) {
   if (!stats.rows) return `No heat map for the ${who}.`;
   const cellBox = [
     stats.best[1] / stats.cols,
@@ -184,11 +193,60 @@ function describeMap(stats, area, score, who) {
     (stats.best[0] + 1) / stats.rows,
   ];
   const where = whereIs(within(area, cellBox));
-  return `Heat map over the ${who}, ${stats.rows} by ${stats.cols} cells that add up to the score. ` +
-    `The strongest cell is at the ${where} and holds ${formatPercent(score ? stats.max / score : 0)} of the score.`;
+  return `Heat map over the ${who}, ${stats.rows} by ${stats.cols} cells that add up to ${scoreWords(data.mode)}, ` +
+    `${formatScore(data.score)}. The strongest cell is at the ${where} and holds ` +
+    `${formatPercent(data.score > 0 ? stats.max / data.score : 0)} of it.`;
 }
 
 let overlays = [];
+let modeRequest = 0;
+
+/** The explanation of the same pair in another mode, fetched once and kept with the context. */
+async function switchMode(body, data, ctx, mode, status) {
+  ctx.byMode = ctx.byMode || {};
+  ctx.byMode[data.mode] = data;
+  const seq = ++modeRequest;
+  let next = ctx.byMode[mode];
+  if (!next) {
+    status.textContent = "Working it out\u2026";
+    try {
+      next = await api("/api/explain", { upload: data.query.upload, item: data.query.item, box: data.query.box,
+        layer: data.layer, match: data.match.id, mode });
+    } catch (err) {
+      status.textContent = err.message;
+      return;
+    }
+    ctx.byMode[mode] = next;
+  }
+  if (seq !== modeRequest || !body.isConnected) return;
+  renderExplanation(body, next, ctx);
+  const radio = body.querySelector(`input[name="explain-mode"][value="${mode}"]`);
+  if (radio) radio.focus();
+}
+
+function summaryBlock(data, ctx) {
+  const match = data.match;
+  const layerText = ctx.layerHint ? `the ${ctx.layer} layer (finds ${ctx.layerHint})` : `the ${ctx.layer} layer`;
+  const summary = el(
+    "div",
+    { class: "explain-summary" },
+    el("p", { class: "span-all" }, `${match.name} compared with ${ctx.queryLabel} on ${layerText}` +
+      `${ctx.box ? ", using the marked region of the query only" : ""}.`),
+    el("div", {}, el("span", { class: "big-score", text: formatScore(data.cosine) }), el("span", { class: "big-score-label", text: "score" })),
+    el("p", { class: "score-meaning" }, "How alike the two images look to the network at this layer, the number the results are ranked by: " +
+      "1.000 would mean no difference, and unrelated images often score high too."),
+  );
+  if (data.centred !== null && data.centred !== undefined) {
+    summary.append(
+      el("div", {}, el("span", { class: "big-score-centred", text: formatScore(data.centred) }),
+        el("span", { class: "big-score-label", text: "beyond the archive's average" })),
+      el("p", { class: "score-meaning" }, "The same comparison after taking away what every image of this archive has in common: " +
+        "what these two share that other images do not (0 means no more alike than two average images of the archive)."),
+    );
+  }
+  summary.append(el("p", { class: "verdict-note span-all", text: "This score is evidence for you to review, not a verdict: look at both images yourself before deciding they show the same thing." }));
+  return summary;
+}
 
 /** Fill `body` with the explanation `data` (from /api/explain). */
 export function renderExplanation(body, data, ctx) {
@@ -196,44 +254,42 @@ export function renderExplanation(body, data, ctx) {
   overlays = [];
   body.replaceChildren();
   const match = data.match;
+  const what = scoreWords(data.mode);
   const queryArea = ctx.box || [0, 0, 1, 1];
   const pairs = data.pairs.map((p, i) => ({
     n: i + 1,
     colour: PAIR_COLOURS[i % PAIR_COLOURS.length],
     query: within(queryArea, p.query_box),
     match: p.match_box,
-    value: p.value,
+    share: p.share,
+    similarity: p.similarity,
   }));
 
-  // Score and the caution that goes with it.
-  const layerText = ctx.layerHint ? `the ${ctx.layer} layer (finds ${ctx.layerHint})` : `the ${ctx.layer} layer`;
-  const summary = el(
-    "div",
-    { class: "explain-summary" },
-    el("div", {}, el("span", { class: "big-score", text: formatScore(data.score) }), el("span", { class: "big-score-label", text: "score" })),
-    el(
-      "div",
-      {},
-      el("p", {}, `${match.name} compared with ${ctx.queryLabel} on ${layerText}${ctx.box ? ", using the marked region of the query only" : ""}. ` +
-        "1.000 would mean the network sees no difference at this layer."),
-      el("p", { class: "verdict-note", text: "This score is evidence for you to review, not a verdict: look at both images yourself before deciding they show the same thing." }),
-    ),
-  );
-  body.append(summary);
-  if (Math.abs(data.indexed_score - data.score) > 0.002) {
+  body.append(summaryBlock(data, ctx));
+  if (Math.abs(data.indexed_score - data.cosine) > 0.002) {
     body.append(el("p", { class: "message message-error", role: "note", text:
       `the file seems to have changed since it was indexed: against the stored description the score is ${formatScore(data.indexed_score)}. Run kinscope index again.` }));
   }
 
-  // Controls.
+  // Controls: what is drawn, and what the heat maps divide.
   const heatToggle = el("input", { type: "checkbox", id: "toggle-heat", checked: true });
   const pairToggle = el("input", { type: "checkbox", id: "toggle-pairs", checked: true });
+  const modeStatus = el("span", { class: "fine", role: "status", "aria-live": "polite" });
+  const modeChoice = el("fieldset", { class: "mode-choice" }, el("legend", { text: "Heat maps divide" }));
+  for (const [value, label] of [["centred", "the similarity beyond the archive's average"], ["cosine", "the score"]]) {
+    const input = el("input", { type: "radio", name: "explain-mode", id: `explain-mode-${value}`, value,
+      checked: data.mode === value, disabled: value === "centred" && (data.centred === null || data.centred === undefined) });
+    input.addEventListener("change", () => { if (input.checked) switchMode(body, data, ctx, value, modeStatus); });
+    modeChoice.append(el("label", { for: `explain-mode-${value}` }, input, label));
+  }
   body.append(
     el(
       "div",
       { class: "explain-controls" },
       el("label", { for: "toggle-heat" }, heatToggle, "Show heat maps"),
       el("label", { for: "toggle-pairs" }, pairToggle, "Show linked regions"),
+      modeChoice,
+      modeStatus,
     ),
   );
 
@@ -256,27 +312,31 @@ export function renderExplanation(body, data, ctx) {
 
   const qStats = mapStats(data.query_map);
   const mStats = mapStats(data.match_map);
+  const meaning = data.mode === "centred"
+    ? "Cells below zero are left dark: there the image looks less like the other one than an average image does. " +
+      "What every image of the archive has, the frame's edges included, adds almost nothing here."
+    : "Cells along the frame's edges are often bright on the middle layers: the network reacts to the border " +
+      "of any picture, so bright edges alone say little about the content." +
+      (data.centred === null || data.centred === undefined ? "" : " The other choice above takes that away.");
   const legend = el(
     "div",
     { class: "legend", id: "heat-legend" },
     el("span", { class: "legend-ends", text: "none" }),
     el("span", { class: "legend-ramp", "aria-hidden": "true" }),
     el("span", { class: "legend-ends", text: "largest cell" }),
-    el("span", {}, `The cells over each image add up to the score, ${formatScore(data.score)}: the brighter a cell, ` +
-      "the more of the similarity came from that part of the image. Point at a cell to read its value. " +
-      "Cells along the frame's edges are often bright on the middle layers: the network reacts to the border " +
-      "of any picture, so bright edges alone say little about the content."),
+    el("span", {}, `The cells over each image add up to ${what}, ${formatScore(data.score)}: the brighter a cell, ` +
+      `the more of it came from that part of the image. Point at a cell to read its value. ${meaning}`),
   );
   body.append(legend);
 
-  q.canvas.setAttribute("aria-label", describeMap(qStats, queryArea, data.score, "query"));
-  m.canvas.setAttribute("aria-label", describeMap(mStats, [0, 0, 1, 1], data.score, "match"));
+  q.canvas.setAttribute("aria-label", describeMap(qStats, queryArea, data, "query"));
+  m.canvas.setAttribute("aria-label", describeMap(mStats, [0, 0, 1, 1], data, "match"));
   const qo = new Overlay(q.img, q.canvas, {
-    map: data.query_map, area: queryArea, score: data.score, readout: q.readout, who: "query",
+    map: data.query_map, area: queryArea, score: data.score, readout: q.readout, who: "query", what,
     pairs: pairs.map((p) => ({ n: p.n, colour: p.colour, box: p.query })),
   });
   const mo = new Overlay(m.img, m.canvas, {
-    map: data.match_map, area: [0, 0, 1, 1], score: data.score, readout: m.readout, who: "match",
+    map: data.match_map, area: [0, 0, 1, 1], score: data.score, readout: m.readout, who: "match", what,
     pairs: pairs.map((p) => ({ n: p.n, colour: p.colour, box: p.match })),
   });
   overlays = [qo, mo];
@@ -288,39 +348,19 @@ export function renderExplanation(body, data, ctx) {
     overlays.forEach((o) => { o.showPairs = pairToggle.checked; o.draw(); });
   });
 
-  // Region pairs.
-  const highlight = (n) => overlays.forEach((o) => { o.active = n; o.draw(); });
-  const pairList = el("ol", { class: "pair-list", id: "pair-list" });
-  for (const p of pairs) {
-    const item = el(
-      "li",
-      { tabindex: "0", class: "pair", dataset: { n: p.n } },
-      el("span", { class: "pair-chip", text: String(p.n) }),
-      el("span", {}, `query ${whereIs(p.query)} \u2194 match ${whereIs(p.match)}`),
-      el("span", { class: "pair-share", text: `${formatPercent(data.score ? p.value / data.score : 0)} of the score` }),
-    );
-    item.querySelector(".pair-chip").style.backgroundColor = p.colour;
-    const on = () => { item.classList.add("is-active"); highlight(p.n); };
-    const off = () => { item.classList.remove("is-active"); highlight(null); };
-    item.addEventListener("mouseenter", on);
-    item.addEventListener("mouseleave", off);
-    item.addEventListener("focus", on);
-    item.addEventListener("blur", off);
-    pairList.append(item);
-  }
   const details = el("div", { class: "explain-details" });
   body.append(details);
-  details.append(
-    el(
-      "section",
-      { class: "explain-section", "aria-labelledby": "pairs-heading" },
-      el("h3", { id: "pairs-heading", text: "Regions that correspond" }),
-      el("p", { class: "fine", text: "The strongest links between a region of the query and a region of the match, drawn on both images with the same number and colour. Each region is used once. Point at a row to single it out." }),
-      pairs.length ? pairList : el("p", { text: "No region pairs for this match." }),
-    ),
-  );
+  details.append(pairSection(data, pairs, what, (n) => overlays.forEach((o) => { o.active = n; o.draw(); })));
+  details.append(channelSection(data, ctx, what));
 
-  // Feature detectors.
+  const actions = el("div", { class: "explain-actions" }, el("a", { class: "button", href: match.page || `/items/${match.id}`, text: "Open the match's page" }));
+  if (ctx.onUse) {
+    actions.append(el("button", { type: "button", class: "button", text: "Search with the match", onclick: () => ctx.onUse(match) }));
+  }
+  body.append(actions);
+}
+
+function channelSection(data, ctx, what) {
   const channelList = el("ol", { class: "channel-list", id: "channel-list" });
   let together = 0;
   const topShare = Math.max(1e-12, ...data.channels.map((c) => c.share));
@@ -345,35 +385,28 @@ export function renderExplanation(body, data, ctx) {
           {},
           el("span", { class: "channel-name", text: `Detector ${c.channel}` }),
           " ",
-          el("span", { class: "channel-share", text: `${formatPercent(c.share)} of the score` }),
+          el("span", { class: "channel-share", text: `${formatPercent(c.share)} of ${what}` }),
           el("div", { class: "share-bar", "aria-hidden": "true" }, bar),
         ),
         c.exemplars.length ? exemplars : el("p", { class: "fine", text: "No archive patches recorded for this detector yet." }),
       ),
     );
   }
-  const rest = ctx.channels ? ` The rest of the score is spread over the other ${ctx.channels - data.channels.length} detectors of this layer.` : "";
-  details.append(
-    el(
-      "section",
-      { class: "explain-section", "aria-labelledby": "channels-heading" },
-      el("h3", { id: "channels-heading", text: "Feature detectors that carried most of the score" }),
-      el("p", { class: "fine", text: "Each detector is one channel of the layer: it responds to one kind of visual pattern and has no name. " +
-        "Beside each are the places in the archive where it responds most strongly, to show what it looks for. " +
-        `Together these ${data.channels.length} carry ${formatPercent(together)} of the score.${rest} ` +
-        "The bars compare the detectors with one another." }),
-      channelList,
-    ),
+  const rest = ctx.channels ? ` The rest is spread over the other ${ctx.channels - data.channels.length} detectors of this layer.` : "";
+  return el(
+    "section",
+    { class: "explain-section", "aria-labelledby": "channels-heading" },
+    el("h3", { id: "channels-heading", text: `Feature detectors that carried most of ${what}` }),
+    el("p", { class: "fine", text: "Each detector is one channel of the layer: it responds to one kind of visual pattern and has no name. " +
+      "Beside each are the places in the archive, away from the frame's edge, where it responds most strongly, to show what it looks for. " +
+      `Together these ${data.channels.length} carry ${formatPercent(together)} of ${what}.${rest} ` +
+      "The bars compare the detectors with one another." }),
+    data.channels.length ? channelList : el("p", { text: "No detector adds to it." }),
   );
-
-  const actions = el("div", { class: "explain-actions" }, el("a", { class: "button", href: match.page || `/items/${match.id}`, text: "Open the match's page" }));
-  if (ctx.onUse) {
-    actions.append(el("button", { type: "button", class: "button", text: "Search with the match", onclick: () => ctx.onUse(match) }));
-  }
-  body.append(actions);
 }
 
 export function clearExplanation(body) {
+  modeRequest += 1;
   overlays.forEach((o) => o.destroy());
   overlays = [];
   body.replaceChildren();
