@@ -2,7 +2,9 @@
 
 It composes the rooms below it: the catalog and manifest (index.db), the stores as this process reads
 them (index.vectors.reader.Reader), the indexer (index.ingest.indexer.Indexer), the model
-(index.model), searches (index.search) and the duplicate job (index.duplicates).
+(index.model), searches (index.search), the duplicate job (index.duplicates) and the collection map
+(index.map). The last two are mixed in (DuplicateJobs, MapJobs: each room's methods of Archive, kept in
+that room), so this file stays a table of contents.
 """
 from __future__ import annotations
 
@@ -17,6 +19,7 @@ from .common.errors import ArchiveError
 from .db import manifest as mf
 from .db.catalog import Catalog
 from .db.folder import CatalogProblem, open_catalog, sqlite_message
+from .duplicates.jobs import DuplicateJobs
 from .images import renditions as media
 from .images.decode import DecodeError, open_image
 from .images.decode_memory import quiet_pillow_warnings
@@ -25,6 +28,7 @@ from .images.renditions import DISPLAY_SIDE
 from .ingest.cluster import connect as connect_cluster
 from .ingest.indexer import Indexer
 from .ingest.pipeline import configure_threads, cores
+from .map.jobs import MapJobs
 from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone
 from .model.choice import ENGINES
 from .model.pooling import PCAWhitening
@@ -40,7 +44,7 @@ __all__ = ["Archive", "ArchiveError", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "Decod
            "type_name"]
 
 
-class Archive:
+class Archive(DuplicateJobs, MapJobs):
     """One database folder: catalog.sqlite, each layer's vector store, manifest.json."""
 
     def __init__(self, db: Path, manifest: dict, catalog: Catalog | None = None):
@@ -274,54 +278,6 @@ class Archive:
         except ValueError as exc:
             raise ArchiveError(str(exc)) from None
 
-    # --- duplicates -------------------------------------------------------------------------
-    def duplicates(self, *, layer: str | None = None, threshold: float | None = None, normalised: bool = True,
-                   progress: bool = False, prefer: list[str] | None = None) -> dict:
-        """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md.
-        `prefer`: folders whose members the keeper rule prefers, in order."""
-        from .duplicates import groups as dup
-
-        try:
-            return dup.from_archive(self.catalog, self.reader, layer=layer, threshold=threshold,
-                                    normalised=normalised, progress=progress, prefer=prefer)
-        except dup.DuplicatesError as exc:
-            raise ArchiveError(str(exc)) from None
-
-    def quarantine(self, doc: dict, dest: str | os.PathLike, *, apply: bool = False) -> dict:
-        """Move the non-keepers of `doc` (from `duplicates`) into `dest`, outside every indexed root,
-        with a manifest to undo it; only the plan unless apply=True. Never deletes."""
-        from .duplicates.quarantine import move
-
-        return move(doc, dest, self.catalog.known_roots(), db=str(self.db), apply=apply)
-
-    @staticmethod
-    def restore(manifest: str | os.PathLike, *, apply: bool = False) -> dict:
-        """Put the files a quarantine manifest lists back where they were; never overwrites."""
-        from .duplicates.quarantine import restore
-
-        return restore(manifest, apply=apply)
-
-    @staticmethod
-    def threshold_derivation() -> str:
-        """How the default duplicate thresholds were derived: which data, which rule (plain text)."""
-        from .duplicates.calibration import explain
-
-        return explain()
-
-    @staticmethod
-    def plan_csv(doc: dict) -> str:
-        """A review plan (from duplicate_plan) as the CSV the review page exports and --plan reads."""
-        from .duplicates.plan import to_csv
-
-        return to_csv(doc)
-
-    @staticmethod
-    def write_review_page(doc: dict, path: str | os.PathLike) -> None:
-        """A static HTML page of the groups in `doc`, thumbnails embedded (OSError if it cannot be written)."""
-        from .duplicates.review_page import write
-
-        write(doc, path)
-
     # --- roots ------------------------------------------------------------------------------
     def roots(self) -> list[dict]:
         """The folders (or files) runs were given: [{root, rows, state}] (see index/db/roots.py)."""
@@ -340,17 +296,6 @@ class Archive:
         from .db.roots import forget
 
         return forget(self.catalog, self.indexer, root, even_if_present=even_if_present)
-
-    def duplicate_plan(self, decisions: dict | None = None, *, text: str | None = None) -> dict:
-        """A review plan (index.duplicates.plan) from the review page's decisions, or from a plan file's text."""
-        from .duplicates import plan as dup_plan
-
-        try:
-            if text is not None:
-                return dup_plan.plan_from_file(self, text)
-            return dup_plan.plan_from_decisions(self, decisions)
-        except dup_plan.PlanError as exc:
-            raise ArchiveError(str(exc)) from None
 
     # --- verification ---------------------------------------------------------------------
     def check(self) -> dict:
@@ -410,29 +355,6 @@ class Archive:
 
     def __exit__(self, *exc):
         self.close()
-
-    # --- collection map (index/map/) ---------------------------------------------------------
-    def map(self, *, layer: str | None = None, seed: int = 0, full: bool = False, sample: int | None = None,
-            progress=None) -> dict:
-        """Lay the layer's items out in 2-D by similarity and store it (map-<layer>.npz), or bring a
-        stored map up to date (new items placed by their neighbours); see docs/map.md."""
-        from .map import collection as cm
-
-        try:
-            return cm.build(self, self._layer(layer)["name"], seed=seed, full=full,
-                            sample=cm.ml.SAMPLE if sample is None else int(sample), progress=progress)
-        except cm.MapError as exc:
-            raise ArchiveError(str(exc)) from None
-
-    def map_view(self, layer: str | None = None) -> dict | None:
-        """The stored map as of the committed state (updated in memory only), with each item's folder
-        and date; None when `kinscope map` has not been run for the layer."""
-        from .map import collection as cm
-
-        try:
-            return cm.current(self, self._layer(layer)["name"])
-        except cm.MapError as exc:
-            raise ArchiveError(str(exc)) from None
 
     def paths_of(self, ids: Iterable[int]) -> list[dict]:
         """[{id, path}] of these indexed items, in id order (ids without an item are left out)."""
