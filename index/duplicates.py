@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import dup_colour
 from . import keeper as keeper_rule
 from .dup_background import (BACKGROUND_CEILING_MADS, BACKGROUND_RANK, BACKGROUND_SAMPLE,  # noqa: F401 (re-exported)
                              LOCAL_RANK, background, normalise, screened)
@@ -39,7 +40,7 @@ class DuplicatesError(ValueError):
 
 # --- grouping --------------------------------------------------------------------------------------------
 def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True, min_cosine: float | None = None,
-               k: int = NEIGHBOURS, exact_max: int = EXACT_SEARCH_MAX, seed: int = 0,
+               k: int = NEIGHBOURS, exact_max: int = EXACT_SEARCH_MAX, seed: int = 0, pair_check=None,
                progress: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
     """Pairs (i < j) that count as near duplicates, their scores, and the background (None for raw cosine).
 
@@ -51,12 +52,15 @@ def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True
     if not normalised:
         a, b, s, _ = candidate_pairs(x, threshold, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
                                      progress=progress)
-        return a, b, s, None
+        ok = pair_check(a, b) if pair_check is not None and len(a) else np.ones(len(a), bool)
+        return a[ok], b[ok], s[ok], None
     a, b, _, cos, local = candidate_pairs(x, floor, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
                                           kth=LOCAL_RANK, progress=progress)
     bg, _ = screened(x, a, b, cos, local, seed=seed, progress=progress)
     s = normalise(cos, bg[a], bg[b])
     keep = s >= threshold
+    if pair_check is not None and keep.any():
+        keep[keep] = pair_check(a[keep], b[keep])
     return a[keep], b[keep], s[keep], bg
 
 
@@ -153,7 +157,7 @@ def exact_groups(hashes: list[str | None]) -> list[list[int]]:
 def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: float = DEFAULT_THRESHOLD,
          normalised: bool = True, min_cosine: float | None = None, k: int = NEIGHBOURS,
          exact_max: int = EXACT_SEARCH_MAX, progress: bool = False, layer: str | None = None,
-         prefer: list[str] | None = None) -> dict:
+         prefer: list[str] | None = None, colour_check: bool = True) -> dict:
     """Group ids by content hash and by descriptor similarity; returns the document of groups.
 
     ids (n,), vectors (n, d) L2-normalised, rows: n dicts with path, width, height, mtime, size, sha256
@@ -181,8 +185,11 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
     reps = np.flatnonzero(representative)
     bg = None
     if len(reps) >= 2:
+        check = None
+        if colour_check:
+            check = dup_colour.PairCheck([rows[p]["path"] for p in reps.tolist()], progress=progress)
         a, b, s, bg_reps = near_edges(vectors[reps], threshold, normalised=normalised, min_cosine=min_cosine,
-                                      k=k, exact_max=exact_max, progress=progress)
+                                      k=k, exact_max=exact_max, pair_check=check, progress=progress)
         if bg_reps is not None:
             bg = np.zeros(n, np.float32)
             bg[reps] = bg_reps
