@@ -714,14 +714,15 @@ class Archive:
 
     # --- duplicates -------------------------------------------------------------------------
     def duplicates(self, *, layer: str | None = None, threshold: float | None = None, normalised: bool = True,
-                   progress: bool = False, prefer: list[str] | None = None) -> dict:
+                   progress: bool = False, prefer: list[str] | None = None, colour_check: bool = True) -> dict:
         """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md.
-        `prefer`: folders whose members the keeper rule prefers, in order."""
+        `prefer`: folders whose members the keeper rule prefers, in order. `colour_check=False` leaves out the
+        colour check of near pairs (then recoloured designs group like copies)."""
         from . import duplicates as dup
 
         try:
             return dup.from_archive(self, layer=layer, threshold=threshold, normalised=normalised, progress=progress,
-                                    prefer=prefer)
+                                    prefer=prefer, colour_check=colour_check)
         except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
 

@@ -314,7 +314,8 @@ def resolve_settings(archive, layer: str | None, threshold: float | None,
 
 
 def from_archive(archive, *, layer: str | None = None, threshold: float | None = None,
-                 normalised: bool = True, progress: bool = False, prefer: list[str] | None = None) -> dict:
+                 normalised: bool = True, progress: bool = False, prefer: list[str] | None = None,
+                 colour_check: bool = True) -> dict:
     """Run the job over every embedded item of an Archive on one layer."""
     layer, chosen, floor = resolve_settings(archive, layer, threshold, normalised)
     stored_ids, vectors = all_vectors(archive.store(layer))
@@ -324,7 +325,7 @@ def from_archive(archive, *, layer: str | None = None, threshold: float | None =
     order = np.flatnonzero(keep)[np.argsort(stored_ids[keep], kind="stable")]  # catalog order: deterministic
     ids, vectors = stored_ids[order], vectors[order]
     doc = find(ids, vectors, [rows[int(i)] for i in ids], threshold=chosen, normalised=normalised,
-               min_cosine=floor, progress=progress, layer=layer, prefer=prefer)
+               min_cosine=floor, progress=progress, layer=layer, prefer=prefer, colour_check=colour_check)
     doc["calibration"] = calibration_record(layer) if threshold is None else None  # None: the user chose
     doc["db"] = str(archive.db)
     return doc
