@@ -41,6 +41,16 @@ SIGNATURE_SIZE = BINS + 1 + TONES + 1  # hue histogram (sums to 1, or all zero),
 # hue spread
 
 
+RULE = (
+    "colour check: a near pair is not a copy when both images are coloured (mean CIELAB chroma >= {grey:g}) and "
+    "their chroma-weighted hue distributions lie more than {hue:g} degrees apart (circular earth mover's "
+    "distance) plus {factor:g} x the larger hue spread (how far a crop keeping 70% of the area moves an image's "
+    "own distribution), or their colour sits in other tones (its shares in the darkest, middle and lightest "
+    "third differ by more than {tone:g}); read from the middle {middle:.0%} of each side. A file that cannot be "
+    "read keeps its pairs"
+).format(grey=GREY_CHROMA, hue=MAX_HUE_SHIFT, factor=SPREAD_FACTOR, tone=MAX_TONE_SHIFT, middle=MIDDLE)
+
+
 def _srgb_to_linear(c: np.ndarray) -> np.ndarray:
     return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
 
@@ -145,14 +155,14 @@ def read_signature(path: str) -> np.ndarray | None:
 
 class PairCheck:
     """Callable (i, j) -> bool per pair (positions into `paths`): the colour check, reading each file at most
-    once per run (signatures are kept for the run). `read` counts the files read."""
+    once per run (signatures are kept for the run). `read` counts the files read, `vetoed` the pairs refused."""
 
     def __init__(self, paths: list[str], *, progress: bool = False):
         self.paths = paths
         self.progress = progress
         self.sig = np.full((len(paths), SIGNATURE_SIZE), np.nan, np.float32)
         self.known = np.zeros(len(paths), bool)
-        self.read = 0
+        self.read = self.vetoed = 0
 
     def __call__(self, i: np.ndarray, j: np.ndarray) -> np.ndarray:
         assert i.shape == j.shape, "pair arrays must have one shape"
@@ -162,7 +172,9 @@ class PairCheck:
             self.sig[need] = signatures([self.paths[k] for k in need.tolist()], progress=self.progress)
             self.known[need] = True
             self.read += len(need)
-        return consistent(self.sig[i], self.sig[j])
+        ok = consistent(self.sig[i], self.sig[j])
+        self.vetoed += int((~ok).sum())
+        return ok
 
 
 def signatures(paths: list[str], *, progress: bool = False) -> np.ndarray:

@@ -184,8 +184,8 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
 
     reps = np.flatnonzero(representative)
     bg = None
+    check = None
     if len(reps) >= 2:
-        check = None
         if colour_check:
             check = dup_colour.PairCheck([rows[p]["path"] for p in reps.tolist()], progress=progress)
         a, b, s, bg_reps = near_edges(vectors[reps], threshold, normalised=normalised, min_cosine=min_cosine,
@@ -224,9 +224,11 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
         "min_cosine": None if min_cosine is None else float(min_cosine),
         "rules": {"exact": EXACT_RULE, "near": NEAR_RULE, "keeper": rule.text,
                   "score": (NORMALISATION_RULE if normalised else "score = cosine similarity of the descriptors")
-                  + (f"; a near pair must also have cosine >= {min_cosine:g}" if min_cosine is not None else "")},
+                  + (f"; a near pair must also have cosine >= {min_cosine:g}" if min_cosine is not None else ""),
+                  "colour": dup_colour.RULE if colour_check else "colour check: off"},
         "counts": {"images": int(n), "groups": len(out), "exact": sum(g["kind"] == "exact" for g in out),
-                   "near": sum(g["kind"] == "near" for g in out), "images_in_groups": in_groups},
+                   "near": sum(g["kind"] == "near" for g in out), "images_in_groups": in_groups,
+                   "colour_vetoed": check.vetoed if check else 0, "colour_read": check.read if check else 0},
         "groups": out,
     }
 
