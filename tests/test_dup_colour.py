@@ -106,3 +106,22 @@ def test_a_file_that_cannot_be_read_keeps_its_pairs(tmp_path, sample_images):
     assert check.read == 4
     check(np.array([0]), np.array([1]))
     assert check.read == 4  # each file is read once per run
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "known limitation, measured (docs/duplicates.md, Colour check): a 5% cast moves the hue of a faint colour by "
+    "tens of degrees; of the demo's ink-and-bone and heather originals 2 of 44 keep the pair. Allowances tried "
+    "for the cast let 4-22 of the demo's 69 colourway near pairs through"))
+def test_a_mild_colour_cast_on_a_muted_design_keeps_the_pair():
+    # the demo's re-scan lighting (scripts/make_demo_archive.py): red and blue gains 1 +- 0.05, a warm cast
+    with open(DEMO / "key.csv", newline="") as fh:
+        paths = [r["path"] for r in csv.DictReader(fh)
+                 if r["kind"] == "original" and r["colourway"] in ("ink and bone", "heather")]
+    assert len(paths) >= 40
+    kept = 0
+    for path in paths:
+        with Image.open(DEMO / path) as im:
+            image = im.convert("RGB")
+        warm = Image.fromarray(np.clip(np.asarray(image, np.float64) * [1.05, 1.0, 0.95], 0, 255).astype(np.uint8))
+        kept += bool(dc.consistent(_sig(image)[None], _sig(_jpeg(warm))[None])[0])
+    assert kept >= 0.9 * len(paths), f"{kept} of {len(paths)} kept"
