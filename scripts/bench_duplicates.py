@@ -30,6 +30,7 @@ from PIL import Image
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
+from index.duplicates import colour as dup_colour  # noqa: E402
 from index.duplicates import groups as dup  # noqa: E402
 from index.api import Archive  # noqa: E402
 import dup_settings  # noqa: E402
@@ -101,6 +102,8 @@ def main() -> None:
     ap.add_argument("--large", type=int, default=0, metavar="N",
                     help="Also run every setting with N extra generated distractors (a second archive).")
     ap.add_argument("--sweep", action="store_true", help="Also print the calibration sweep (layers x thresholds).")
+    ap.add_argument("--no-colour-check", dest="colour", action="store_false",
+                    help="Leave out the colour check of near pairs (index/duplicates/colour.py), for comparison.")
     args = ap.parse_args()
     if args.workdir:
         args.workdir.mkdir(parents=True, exist_ok=True)
@@ -133,11 +136,12 @@ class Indexed:
             np.save(bits_cache, self.bits)
         self.source = {int(i): l["source"] for i, l in zip(self.ids, self.labels)}
 
-    def ours(self, sel: np.ndarray, layer: str, threshold: float, normalised: bool, floor) -> list[set[int]]:
+    def ours(self, sel: np.ndarray, layer: str, threshold: float, normalised: bool, floor,
+             colour: bool = True) -> list[set[int]]:
         """Our groups on the positions `sel`, as sets of positions (exact groups joined to near ones)."""
         ids = self.ids[sel]
         doc = dup.find(ids, self.vectors[layer][sel], [self.rows[int(i)] for i in ids], threshold=threshold,
-                       normalised=normalised, min_cosine=floor, layer=layer)
+                       normalised=normalised, min_cosine=floor, layer=layer, colour_check=colour)
         pos = dict(zip(ids.tolist(), sel.tolist()))
         return [{pos[i] for i in c} for c in clusters_from_doc(doc)]
 
@@ -165,9 +169,10 @@ def run(args, work: Path) -> None:
           + (f" and cosine >= {floor}" if floor is not None else "") + "; "
           f"pHash: imagehash.phash (64 bits), Hamming <= {' and <= '.join(map(str, PHASH_THRESHOLDS))}; "
           "pairwise precision / recall / F1 of the groups")
-    ours = lambda sel: ix.ours(sel, args.layer, threshold, normalised, floor)  # noqa: E731
+    print("colour check of near pairs: " + ("on (index/duplicates/colour.py)" if args.colour else "off"))
+    ours = lambda sel: ix.ours(sel, args.layer, threshold, normalised, floor, args.colour)  # noqa: E731
     family_table(ix, ours)
-    one_archive_row(archive, ix, args.layer, threshold, normalised)
+    one_archive_row(archive, ix, args.layer, threshold, normalised, args.colour)
     settings = {"families": (ix, family_subsets(ix.labels)), **{f"{c}v": (ix, [dup_settings.versions(ix.labels, c)])
                                                                 for c in dup_settings.VERSION_COUNTS}}
     settings_table(f"many versions in one run (with the {args.distractors} distractors)", ix, ours,
@@ -180,15 +185,19 @@ def run(args, work: Path) -> None:
         extra_pos = np.arange(len(ix.labels), len(bx.labels))
         grown = {name: [np.concatenate([sel, extra_pos]) for sel in sels] for name, (_, sels) in settings.items()}
         settings_table(f"large: every setting with {len(extra_pos)} extra generated distractors (dup_distractors.py)",
-                       bx, lambda sel: bx.ours(sel, args.layer, threshold, normalised, floor), grown)
+                       bx, lambda sel: bx.ours(sel, args.layer, threshold, normalised, floor, args.colour), grown)
         settings.update({f"{name}+large": (bx, sels) for name, sels in grown.items()})
         big.close()
     if args.sweep:
         runs = {}
+        checks = {id(x): dup_colour.PairCheck([l["path"] for l in x.labels]) if args.colour else None
+                  for x, _ in settings.values()}
         for layer, low in (("objects", 0.15), ("parts", 0.04)):
-            runs[layer] = {name: [(sel, x.labels, dup.near_edges(x.vectors[layer][sel], low,
-                                                                  min_cosine=dup.MIN_COSINE[layer])[:3])
-                                  for sel in sels] for name, (x, sels) in settings.items()}
+            runs[layer] = {name: [(sel, x.labels, dup.near_edges(
+                x.vectors[layer][sel], low, min_cosine=dup.MIN_COSINE[layer],
+                pair_check=None if checks[id(x)] is None else
+                (lambda i, j, sel=sel, c=checks[id(x)]: c(sel[i], sel[j])))[:3])
+                for sel in sels] for name, (x, sels) in settings.items()}
         sweep(runs, {"objects": np.round(np.arange(0.15, 0.301, 0.01), 3),
                      "parts": np.round(np.arange(0.04, 0.0801, 0.005), 3)})
     archive.close()
@@ -231,9 +240,10 @@ def family_table(ix: Indexed, ours) -> None:
         print(line.rstrip(" |"))
 
 
-def one_archive_row(archive: Archive, ix: Indexed, layer: str, threshold: float, normalised: bool) -> None:
+def one_archive_row(archive: Archive, ix: Indexed, layer: str, threshold: float, normalised: bool,
+                    colour: bool = True) -> None:
     """The shipped path end to end: every copy of every family in one archive, through Archive.duplicates."""
-    doc = archive.duplicates(layer=layer, threshold=threshold, normalised=normalised)
+    doc = archive.duplicates(layer=layer, threshold=threshold, normalised=normalised, colour_check=colour)
     members = ix.ids.tolist()
     c = pair_counts(clusters_from_doc(doc), ix.source, members)
     p, r, f = prf(*c)
@@ -271,8 +281,9 @@ def settings_table(title: str, ix: Indexed, ours, settings: dict) -> None:
 
 
 def sweep(layer_runs: dict, thresholds: dict) -> None:
-    """Precision / recall per layer, setting and threshold (for calibration). The screened background does not
-    depend on the threshold, so each setting's pairs are scored once at the lowest one and filtered."""
+    """Precision / recall per layer, setting and threshold (for calibration). The screened background and the
+    colour check do not depend on the threshold, so each setting's pairs are scored once at the lowest one and
+    filtered."""
     print("\ncalibration sweep (normalised score, cosine floor " + str(dup.MIN_COSINE) + "): P = precision, "
           "R = recall over standard pairs; families = pooled one-family runs; Nv = N versions in one run")
     for layer, runs in layer_runs.items():

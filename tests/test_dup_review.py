@@ -91,10 +91,6 @@ def test_a_picture_with_fifteen_versions_ends_up_in_one_group(review_archive):
     assert {m["path"] for m in holding[0]["members"]} == astronaut
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "known limitation, measured: the background that leaves an item's own versions out also leaves out the "
-    "other colourways of its motif (20 per motif), which the objects layer sees as versions; on the demo "
-    "archive 18 of 22 near groups at the default mix colourways (docs/duplicates.md)"))
 def test_different_colourways_of_one_motif_stay_apart(review_archive):
     _, db, swatches = review_archive
     by_motif = {}

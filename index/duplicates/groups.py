@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import colour as dup_colour
 from . import keeper as keeper_rule
 from .background import (BACKGROUND_CEILING_MADS, BACKGROUND_RANK, BACKGROUND_SAMPLE,  # noqa: F401 (re-exported)
                              LOCAL_RANK, background, normalise, screened)
@@ -39,7 +40,7 @@ class DuplicatesError(ValueError):
 
 # --- grouping --------------------------------------------------------------------------------------------
 def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True, min_cosine: float | None = None,
-               k: int = NEIGHBOURS, exact_max: int = EXACT_SEARCH_MAX, seed: int = 0,
+               k: int = NEIGHBOURS, exact_max: int = EXACT_SEARCH_MAX, seed: int = 0, pair_check=None,
                progress: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
     """Pairs (i < j) that count as near duplicates, their scores, and the background (None for raw cosine).
 
@@ -51,12 +52,15 @@ def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True
     if not normalised:
         a, b, s, _ = candidate_pairs(x, threshold, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
                                      progress=progress)
-        return a, b, s, None
+        ok = pair_check(a, b) if pair_check is not None and len(a) else np.ones(len(a), bool)
+        return a[ok], b[ok], s[ok], None
     a, b, _, cos, local = candidate_pairs(x, floor, None, min_cosine=floor, k=k, exact_max=exact_max, seed=seed,
                                           kth=LOCAL_RANK, progress=progress)
     bg, _ = screened(x, a, b, cos, local, seed=seed, progress=progress)
     s = normalise(cos, bg[a], bg[b])
     keep = s >= threshold
+    if pair_check is not None and keep.any():
+        keep[keep] = pair_check(a[keep], b[keep])
     return a[keep], b[keep], s[keep], bg
 
 
@@ -153,7 +157,7 @@ def exact_groups(hashes: list[str | None]) -> list[list[int]]:
 def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: float = DEFAULT_THRESHOLD,
          normalised: bool = True, min_cosine: float | None = None, k: int = NEIGHBOURS,
          exact_max: int = EXACT_SEARCH_MAX, progress: bool = False, layer: str | None = None,
-         prefer: list[str] | None = None) -> dict:
+         prefer: list[str] | None = None, colour_check: bool = True) -> dict:
     """Group ids by content hash and by descriptor similarity; returns the document of groups.
 
     ids (n,), vectors (n, d) L2-normalised, rows: n dicts with path, width, height, mtime, size, sha256
@@ -180,9 +184,12 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
 
     reps = np.flatnonzero(representative)
     bg = None
+    check = None
     if len(reps) >= 2:
+        if colour_check:
+            check = dup_colour.PairCheck([rows[p]["path"] for p in reps.tolist()], progress=progress)
         a, b, s, bg_reps = near_edges(vectors[reps], threshold, normalised=normalised, min_cosine=min_cosine,
-                                      k=k, exact_max=exact_max, progress=progress)
+                                      k=k, exact_max=exact_max, pair_check=check, progress=progress)
         if bg_reps is not None:
             bg = np.zeros(n, np.float32)
             bg[reps] = bg_reps
@@ -217,9 +224,11 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
         "min_cosine": None if min_cosine is None else float(min_cosine),
         "rules": {"exact": EXACT_RULE, "near": NEAR_RULE, "keeper": rule.text,
                   "score": (NORMALISATION_RULE if normalised else "score = cosine similarity of the descriptors")
-                  + (f"; a near pair must also have cosine >= {min_cosine:g}" if min_cosine is not None else "")},
+                  + (f"; a near pair must also have cosine >= {min_cosine:g}" if min_cosine is not None else ""),
+                  "colour": dup_colour.RULE if colour_check else "colour check: off"},
         "counts": {"images": int(n), "groups": len(out), "exact": sum(g["kind"] == "exact" for g in out),
-                   "near": sum(g["kind"] == "near" for g in out), "images_in_groups": in_groups},
+                   "near": sum(g["kind"] == "near" for g in out), "images_in_groups": in_groups,
+                   "colour_vetoed": check.vetoed if check else 0, "colour_read": check.read if check else 0},
         "groups": out,
     }
 
@@ -307,7 +316,8 @@ def resolve_settings(manifest: dict, layer: str | None, threshold: float | None,
 
 
 def from_archive(catalog, reader, *, layer: str | None = None, threshold: float | None = None,
-                 normalised: bool = True, progress: bool = False, prefer: list[str] | None = None) -> dict:
+                 normalised: bool = True, progress: bool = False, prefer: list[str] | None = None,
+                 colour_check: bool = True) -> dict:
     """Run the job over every embedded item of an archive on one layer: its catalog, and its stores as
     `reader` (index.vectors.reader.Reader) reads them."""
     layer, chosen, floor = resolve_settings(reader.manifest, layer, threshold, normalised)
@@ -318,7 +328,7 @@ def from_archive(catalog, reader, *, layer: str | None = None, threshold: float 
     order = np.flatnonzero(keep)[np.argsort(stored_ids[keep], kind="stable")]  # catalog order: deterministic
     ids, vectors = stored_ids[order], vectors[order]
     doc = find(ids, vectors, [rows[int(i)] for i in ids], threshold=chosen, normalised=normalised,
-               min_cosine=floor, progress=progress, layer=layer, prefer=prefer)
+               min_cosine=floor, progress=progress, layer=layer, prefer=prefer, colour_check=colour_check)
     doc["calibration"] = calibration_record(layer) if threshold is None else None  # None: the user chose
     doc["db"] = str(reader.db)
     return doc

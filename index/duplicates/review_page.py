@@ -124,6 +124,7 @@ def render(doc: dict, *, max_groups: int = MAX_GROUPS) -> str:
         f"<dt>Exact groups</dt><dd>{escape(rules['exact'])}</dd>",
         f"<dt>Near groups</dt><dd>{escape(rules['near'])}</dd>",
         f"<dt>Score</dt><dd>{escape(rules['score'])}</dd>",
+        f"<dt>Colour</dt><dd>{escape(rules.get('colour', ''))}</dd>",
         f"<dt>Suggested keeper</dt><dd>{escape(rules['keeper'])} (framed in green)</dd></dl>",
         "</header><main>",
     ]
