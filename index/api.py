@@ -322,6 +322,14 @@ class Archive:
 
         write(doc, path)
 
+    @staticmethod
+    def review_page_coverage(doc: dict) -> dict:
+        """What the review page of `doc` leaves out: {shown: groups on the page, groups: all of them,
+        unshown_moves: the files a quarantine move would move that only groups past the page's limit hold}."""
+        from .duplicates.review_page import shown_groups, unshown_moves
+
+        return {"shown": len(shown_groups(doc)), "groups": len(doc["groups"]), "unshown_moves": unshown_moves(doc)}
+
     # --- roots ------------------------------------------------------------------------------
     def roots(self) -> list[dict]:
         """The folders (or files) runs were given: [{root, rows, state}] (see index/db/roots.py)."""
