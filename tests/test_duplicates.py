@@ -224,6 +224,7 @@ def test_html_report_is_a_static_page_with_thumbnails_and_cautions(dup_archive, 
     out = CliRunner().invoke(main, ["duplicates", "--db", str(db), "--report", str(page), "-q"])
     assert out.exit_code == 0, out.output
     html = page.read_text()
+    assert page.stat().st_mode & 0o077 == 0  # readable by its owner only: it shows the archive
     assert "not a verdict" in html and "Nothing has been moved or deleted" in html
     assert "as private as the archive" in html and "restore MANIFEST" in html
     doc = json.loads(out.stdout)

@@ -122,7 +122,7 @@ def test_the_words_on_each_card_are_what_a_move_would_do(doc):
         assert words.startswith("would move" if name in moving else "stays")
     stays = {n: w for c, w, n in ((c, w, _parsed(n)[0].replace("|", "")) for c, w, n in cards) if c == "stays"}
     assert stays == {"a_large.png": "stays: largest pixel count", "p.png": "stays: lightest compression"}
-    assert "would move: a_large.png stays for it" in html  # the exact group's suggested keeper moves
+    assert "would move: a_<wbr>large.png stays for it (group 2, look-alike)" in html  # the exact group's keeper
     assert "4 files would move" in html
     for kind in ("same bytes", "look-alike"):  # kinds in plain words, not the JSON's exact / near
         assert f"&middot; {kind} &middot;" in html

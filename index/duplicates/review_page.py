@@ -55,14 +55,16 @@ def _when(mtime) -> str:
 
 
 def _decision(g: dict, m: dict, moving: dict, keeper_ok: bool) -> tuple[str, str]:
-    """(css class, the words on the card) for one member."""
+    """(css class, the words on the card as HTML) for one member; `moving` maps each path that would move
+    to (the path that stays for it, the id of the look-alike group that keeps that file, if any)."""
     if m["path"] in moving:
-        stays_for = moving[m["path"]]
+        stays_for, in_group = moving[m["path"]]
         if m["id"] == g["keeper"]:  # an exact group's keeper that a look-alike group's keeper replaces
-            return "moves", f"would move: {os.path.basename(stays_for)} stays for it (a look-alike group)"
+            return "moves", (f"would move: {breakable(os.path.basename(stays_for))} stays for it "
+                             f"(group {in_group}, look-alike)")
         return ("moves", "would move") if keeper_ok else ("left", "left in place: no file here can stay")
     if m["id"] == g["keeper"]:
-        return "stays", f"stays: {g.get('keeper_reason') or 'the rule chose it'}"
+        return "stays", escape(f"stays: {g.get('keeper_reason') or 'the rule chose it'}")
     return "stays", "stays: it is the file that stays in another group"
 
 
@@ -70,7 +72,7 @@ def _facts(g: dict, m: dict, css: str) -> str:
     if css == "stays" and m["id"] == g["keeper"]:
         score = "the file the others are scored against"
     elif g["kind"] == "exact":
-        score = "same bytes as the file that stays"
+        score = "same bytes as every file here"
     else:
         score = f"{m['score']:.3f} (cosine {m['cosine']:.3f})"
     pixels = f"{m['width']:,} \u00d7 {m['height']:,}" if m.get("width") else "unknown"
@@ -89,7 +91,7 @@ def _member(g: dict, m: dict, moving: dict, keeper_ok: bool) -> str:
             + _facts(g, m, css))
     if css == "stays":
         text = f"<div>{text}</div>"
-    return (f"<li class='file {css}'><p class='decision'>{escape(words)}</p>"
+    return (f"<li class='file {css}'><p class='decision'>{words}</p>"
             f"<div class='thumb'>{picture}</div>{text}</li>")
 
 
@@ -168,7 +170,9 @@ def _method(doc: dict) -> str:
 def render(doc: dict, *, max_groups: int | None = None) -> str:
     """The whole page as a string."""
     groups = shown_groups(doc, max_groups)
-    moving = {f["path"]: f["keeper_path"] for f in leaving(doc)}
+    kept_by = {m["path"]: g["id"] for g in doc["groups"] if g["kind"] == "near"
+               for m in g["members"] if m["id"] == g["keeper"]}
+    moving = {f["path"]: (f["keeper_path"], kept_by.get(f["keeper_path"])) for f in leaving(doc)}
     stamp = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
