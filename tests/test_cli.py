@@ -64,3 +64,48 @@ def test_errors_are_one_line_without_a_traceback(tmp_path):
 def test_python_dash_m_index_runs_the_same_cli():
     out = subprocess.run([sys.executable, "-m", "index", "--help"], capture_output=True, text=True, check=True)
     assert "search" in out.stdout and "index" in out.stdout
+
+
+def test_apply_with_a_report_refuses_files_of_groups_the_report_leaves_out(tmp_path, sample_images, monkeypatch):
+    # The report shows at most review_page.MAX_GROUPS groups; --apply moves the files of every group. Here the
+    # limit is 1 of the 3 groups (skimage.data pictures: one byte copy, two look-alike copies), so two files
+    # that would move are on no page: --apply refuses unless --apply-unshown names them.
+    from index.api import Archive
+    from index.duplicates import review_page
+    from tests.test_duplicates import make_folder, snapshot
+
+    root = make_folder(tmp_path / "archive", sample_images, names=("astronaut", "coffee", "camera", "chelsea"))
+    db = tmp_path / "db"
+    with Archive.open(db, create=True, layers=["objects"]) as archive:
+        archive.add([root], progress=False)
+    monkeypatch.setattr(review_page, "MAX_GROUPS", 1)
+    before, q, page = snapshot(root), tmp_path / "q", tmp_path / "review.html"
+    runner = CliRunner()
+    args = ["duplicates", "--db", str(db), "--report", str(page), "--move-to", str(q), "-q"]
+
+    refused = runner.invoke(main, args + ["--apply"])
+    assert refused.exit_code == 2 and "Traceback" not in refused.output
+    assert refused.output.strip().splitlines() == [
+        f"kinscope: the report {page} shows 1 of 3 groups, and 2 of the files to move are only in 2 groups it "
+        "does not show; nothing was moved. Review them in the JSON or CSV output, then add --apply-unshown to "
+        "move them too"]
+    assert snapshot(root) == before and not q.exists()
+    assert "first 1 of 3 groups" in page.read_text()  # the page says so too
+
+    dry = runner.invoke(main, args)  # a dry run lists every file and says which ones the page leaves out
+    assert dry.exit_code == 0 and "--apply will refuse them unless you add --apply-unshown" in dry.output
+    alone = runner.invoke(main, ["duplicates", "--db", str(db), "--apply-unshown", "-q"])
+    assert alone.exit_code == 2
+    assert "--apply-unshown only goes with --report FILE and --move-to DIR --apply" in alone.output
+
+    moved = runner.invoke(main, args + ["--apply", "--apply-unshown"])
+    assert moved.exit_code == 0, moved.output
+    report = json.loads(moved.stdout)["quarantine"]
+    assert sum(f["status"] == "moved" for f in report["files"]) == 3
+    back = runner.invoke(main, ["restore", report["manifest"], "--apply"])
+    assert back.exit_code == 0 and snapshot(root) == before
+
+    monkeypatch.setattr(review_page, "MAX_GROUPS", 500)  # every group on the page: --apply alone moves
+    again = runner.invoke(main, args + ["--apply"])
+    assert again.exit_code == 0, again.output
+    assert sum(f["status"] == "moved" for f in json.loads(again.stdout)["quarantine"]["files"]) == 3

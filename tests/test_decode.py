@@ -287,12 +287,14 @@ def expected_8bit(values) -> np.ndarray:
 
 
 def test_expected_8bit_is_not_clipping_or_truncating():
-    # Guard on the test data itself: on VALUES_16 the rescale differs from clipping at 255 and from
-    # dropping the low byte (>> 8), so a decoder doing either fails the tests below.
+    # Guard on the test data itself: on VALUES_16 the rounded rescale differs from clipping at 255, from
+    # dropping the low byte (>> 8) and from truncating the rescale, so a decoder doing any of them fails the
+    # tests below. Each condition depends on VALUES_16: data of multiples of 257 only would fail it.
     values = VALUES_16.astype(np.int64)
     expected = expected_8bit(values)
     assert not np.array_equal(expected, np.minimum(values, 255))
     assert not np.array_equal(expected, values >> 8)
+    assert not np.array_equal(expected, values * 255 // 65535)
 
 
 def test_16bit_grey_png_hand_built():

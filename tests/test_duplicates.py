@@ -224,10 +224,20 @@ def test_html_report_is_a_static_page_with_thumbnails_and_cautions(dup_archive, 
     out = CliRunner().invoke(main, ["duplicates", "--db", str(db), "--report", str(page), "-q"])
     assert out.exit_code == 0, out.output
     html = page.read_text()
-    assert "not a verdict" in html and "Nothing has been deleted" in html
+    assert page.stat().st_mode & 0o077 == 0  # readable by its owner only: it shows the archive
+    assert "not a verdict" in html and "Nothing has been moved or deleted" in html
+    assert "as private as the archive" in html and "restore MANIFEST" in html
+    doc = json.loads(out.stdout)
+    for g in doc["groups"]:  # the reason the file stays, in words, and the kind in plain words
+        assert f"<p class='decision'>stays: {g['keeper_reason']}</p>" in html.replace("&#x27;", "'")
+        kind = {"exact": "same bytes", "near": "look-alike"}[g["kind"]]
+        assert f"Group {g['id']} <span class='kind'>&middot; {kind} &middot;" in html
+    paths = [m["path"] for g in doc["groups"] for m in g["members"]]
+    assert len(set(paths)) == len(paths)  # no file in two groups here, so every non-keeper would move
+    assert html.count("<p class='decision'>would move") == len(paths) - len(doc["groups"])
     assert "http://" not in html and "https://" not in html  # nothing to fetch: opens without a server
     uris = html.split('src="data:image/jpeg;base64,')[1:]
-    assert len(uris) == json.loads(out.stdout)["counts"]["images_in_groups"]
+    assert len(uris) == sum(len(g["members"]) for g in doc["groups"])  # one per card
     thumb = Image.open(io.BytesIO(base64.b64decode(uris[0].split('"')[0])))
     assert thumb.format == "JPEG" and max(thumb.size) <= 180
 

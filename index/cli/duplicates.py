@@ -75,6 +75,21 @@ def _check_writable(path: str) -> None:
         _fail(f"cannot write {path}: {exc.strerror or exc}; nothing was moved")
 
 
+def _refuse_unshown(coverage: dict, report_path: str, apply: bool, apply_unshown: bool) -> None:
+    """Files of groups the report leaves out move only when asked for by name (--apply-unshown)."""
+    unshown = coverage["unshown_moves"]
+    if not unshown:
+        return
+    groups = len({f["group"] for f in unshown})
+    said = (f"the report {report_path} shows {coverage['shown']} of {coverage['groups']} groups, and "
+            f"{len(unshown)} of the files to move are only in {groups} group{'s' * (groups != 1)} it does not show")
+    if apply and not apply_unshown:
+        _fail(f"{said}; nothing was moved. Review them in the JSON or CSV output, then add --apply-unshown to move "
+              "them too")
+    if not apply:
+        click.echo(f"Note: {said}; --apply will refuse them unless you add --apply-unshown.", err=True)
+
+
 def _explain(ctx, _param, value) -> None:
     if not value or ctx.resilient_parsing:
         return
@@ -104,6 +119,8 @@ def _read_text(path: str) -> str:
 @click.option("--move-to", type=click.Path(file_okay=False),
               help="Quarantine folder (outside every indexed folder) for the non-keepers; a dry run unless --apply.")
 @click.option("--apply", is_flag=True, help="With --move-to: really move the files and write the manifest.")
+@click.option("--apply-unshown", is_flag=True, help="With --report and --move-to --apply: also move files of "
+              "groups the report does not show (it shows at most 500 groups; otherwise that is refused).")
 @click.option("--prefer", multiple=True, type=click.Path(file_okay=False),
               help="A folder whose copies the keeper rule prefers (repeatable; the first given wins).")
 @click.option("--plan", "plan_path", type=click.Path(exists=True, dir_okay=False),
@@ -112,7 +129,8 @@ def _read_text(path: str) -> str:
 @click.option("--explain-threshold", is_flag=True, is_eager=True, expose_value=False, callback=_explain,
               help="Print how the default thresholds were derived (which data, which rule) and exit.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar and no summary line.")
-def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, prefer, plan_path, quiet):
+def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to, apply, apply_unshown, prefer,
+                   plan_path, quiet):
     """Find exact and near duplicate groups; print them as JSON or CSV. Never deletes anything."""
     if apply and not move_to:
         _fail("--apply only goes with --move-to DIR")
@@ -120,6 +138,8 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
         _fail("--plan goes with --move-to DIR (add --apply to move the files)")
     if plan_path and report_path:
         _fail("--report goes with a new run, not with --plan (the plan was made on the review page)")
+    if apply_unshown and not (report_path and apply):
+        _fail("--apply-unshown only goes with --report FILE and --move-to DIR --apply")
     if apply and output:
         _check_writable(output)
     on_stdout = output is None
@@ -136,6 +156,8 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
                     archive.write_review_page(doc, report_path)
                 except OSError as exc:
                     _fail(f"cannot write the report {report_path}: {exc.strerror or exc}")
+                if move_to:
+                    _refuse_unshown(archive.review_page_coverage(doc), report_path, apply, apply_unshown)
             if move_to:
                 try:
                     doc["quarantine"] = archive.quarantine(doc, move_to, apply=apply)

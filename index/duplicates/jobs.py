@@ -59,6 +59,14 @@ class DuplicateJobs:
 
         write(doc, path)
 
+    @staticmethod
+    def review_page_coverage(doc: dict) -> dict:
+        """What the review page of `doc` leaves out: {shown: groups on the page, groups: all of them,
+        unshown_moves: the files a quarantine move would move that only groups past the page's limit hold}."""
+        from .review_page import shown_groups, unshown_moves
+
+        return {"shown": len(shown_groups(doc)), "groups": len(doc["groups"]), "unshown_moves": unshown_moves(doc)}
+
     def duplicate_plan(self, decisions: dict | None = None, *, text: str | None = None) -> dict:
         """A review plan (index.duplicates.plan) from the review page's decisions, or from a plan file's text."""
         from . import plan as dup_plan
