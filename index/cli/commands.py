@@ -286,8 +286,7 @@ def check(db, repair, as_json):
 def serve(db, host, port, token, allow_hosts):
     """Start the search page on this machine (waitress WSGI server)."""
     try:
-        from web.serve import (ServeError, answered_names, check_allow_host, check_binding, is_loopback,
-                               serve as run_server)
+        from web.serve import ServeError, answered_names, bind, check_allow_host, check_binding, is_loopback
     except ImportError:
         _fail("the web page needs Flask and waitress: pip install -e .")
     try:
@@ -295,6 +294,7 @@ def serve(db, host, port, token, allow_hosts):
         allow_hosts = tuple(check_allow_host(name) for name in allow_hosts)
         with Archive.open(db):
             pass
+        server = bind(db, host, port, token, allow_hosts=allow_hosts)  # listening from here: only now say so
     except (ServeError, ArchiveError) as exc:
         _fail(exc)
     shown = f"[{host}]" if ":" in host else host
@@ -303,7 +303,10 @@ def serve(db, host, port, token, allow_hosts):
              "Other machines can reach it with the token; over plain HTTP the token and the images travel "
              "unencrypted, so use a private network or an HTTPS proxy in front (see --allow-host). ")
     click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
-    run_server(db, host, port, token, allow_hosts=allow_hosts)
+    try:
+        server.run()  # until Ctrl-C (waitress handles it and stops its threads)
+    finally:
+        server.close()
 
 
 from .duplicates import duplicates_cmd, restore_cmd  # noqa: E402
