@@ -7,6 +7,10 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+import pytest
+from PIL import Image
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -47,3 +51,59 @@ def test_server_threads_and_routine_waitress_warnings(sample_archive):
         assert logging.getLogger("waitress").isEnabledFor(logging.WARNING)
     finally:
         server.close()
+
+
+@pytest.fixture(scope="module")
+def first_run(tmp_path_factory):
+    """`kinscope index` into a new database with its output going to pipes, as in `scripts/demo > log 2>&1`."""
+    root = tmp_path_factory.mktemp("first_run")
+    (root / "imgs").mkdir()
+    rng = np.random.default_rng(0)
+    for i in range(6):
+        Image.fromarray(rng.integers(0, 255, (64, 72, 3), dtype=np.uint8)).save(root / "imgs" / f"{i}.png")
+    out = _kinscope("index", root / "imgs", "--db", root / "db", "--layers", "colour,parts", timeout=300)
+    assert out.returncode == 0, out
+    return root, out
+
+
+def test_progress_in_a_log_is_plain_lines(first_run):
+    root, out = first_run
+    assert "\r" not in out.stdout + out.stderr
+    lines = out.stderr.splitlines()
+    assert any(line.startswith("indexing: 6/6 img (100%)") for line in lines), out.stderr
+
+
+def test_duplicate_search_progress_off_a_terminal_is_plain_lines(capsys):
+    """The duplicate job's two bars (background similarity, near-duplicate search) on a captured stderr."""
+    from index.duplicates.background import background
+    from index.duplicates.candidates import candidate_pairs
+
+    x = np.random.default_rng(0).normal(size=(300, 64)).astype(np.float32)
+    x /= np.linalg.norm(x, axis=1, keepdims=True)
+    background(x, progress=True)
+    candidate_pairs(x, 0.9, progress=True)
+    err = capsys.readouterr().err
+    assert "\r" not in err
+    assert "background similarity: 300/300 item (100%)" in err and "near-duplicate search: 300/300" in err
+
+
+def test_a_first_run_says_it_prepares_the_network_and_gives_both_rates(first_run):
+    _, out = first_run
+    first = out.stderr.splitlines()[0]
+    assert "preparing the network (once per model)" in first
+    rates = next(line for line in out.stdout.splitlines() if "images/s" in line)
+    assert "while embedding" in rates and "for the whole command" in rates
+    loop, whole = (float(part.split(" images/s")[0].split()[-1]) for part in rates.split(";"))
+    assert 0 < whole <= loop  # the whole command includes the loop
+
+
+@pytest.mark.parametrize("content", [{}, {"notes.txt": b"not an image"}])
+def test_index_with_no_image_files_says_so_and_creates_nothing(tmp_path, content):
+    (tmp_path / "folder").mkdir()
+    for name, data in content.items():
+        (tmp_path / "folder" / name).write_bytes(data)
+    out = _kinscope("index", tmp_path / "folder", "--db", tmp_path / "db")
+    assert out.returncode == 2 and "no image files found" in out.stderr and "Traceback" not in out.stderr
+    assert not (tmp_path / "db").exists()
+    out = _kinscope("index", tmp_path / "gone", "--db", tmp_path / "db")
+    assert out.returncode == 2 and "no such file or folder" in out.stderr and not (tmp_path / "db").exists()

@@ -5,11 +5,12 @@ import json
 import os
 import sqlite3
 import sys
+import time
 
 import click
 
-from ..api import (DEFAULT_BACKBONE, ENGINES, NAMES, Archive, ArchiveError, connect_cluster, quiet_pillow_warnings,
-                   sqlite_message, type_name)
+from ..api import (DEFAULT_BACKBONE, ENGINES, IMAGE_KINDS, NAMES, Archive, ArchiveError, connect_cluster,
+                   quiet_pillow_warnings, sqlite_message, type_name)
 from .shared import DB_HELP, on_archive
 from .shared import fail as _fail
 
@@ -90,9 +91,16 @@ def main() -> None:
 def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, engine, workers, file_timeout, cluster,
               checkpoint_every, moved_from, quiet, as_json):
     """Index every image below PATHS into --db; re-running only does what changed."""
+    started = time.perf_counter()
     if moved_from and len(paths) != 1:
         _fail(click.UsageError("--moved-from takes exactly one PATH: the folder's new place"))
+    new = not Archive.exists(db)
     try:
+        if new and not moved_from and not Archive.finds_images(paths):
+            _fail(f"no image files found below {', '.join(paths)} (kinscope reads {IMAGE_KINDS}); "
+                  f"no database was created")
+        if new and not moved_from and not quiet:  # the next half minute is quiet otherwise
+            click.echo(f"kinscope: new database {db}: preparing the network (once per model)...", err=True)
         with Archive.open(db, create=not moved_from, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
                           whiten=whiten, weights=weights) as archive:
             if moved_from:
@@ -108,21 +116,29 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, e
     if as_json:
         click.echo(json.dumps(report, indent=2))
         return
+    _print_summary(report, db, time.perf_counter() - started)
+    if report["interrupted"]:
+        click.echo("Interrupted: the finished batches are saved. Run the same command again to resume.", err=True)
+        sys.exit(130)
+
+
+def _print_summary(report: dict, db: str, seconds: float) -> None:
+    """The counts; the embedding loop's rate beside the whole command's (start-up and scan included)."""
     click.echo(
         f"{report['new']} new, {report['changed']} changed, {report['moved']} moved, {report['removed']} removed, "
         f"{report['unchanged']} unchanged; {report['embedded']} embedded, {report['failed']} could not be read"
         + (f" ({report['known_failures']} known failures not retried)" if report["known_failures"] else "")
     )
     if report.get("engine"):
-        rate = report["embedded"] / report["seconds"] if report["seconds"] else 0.0
-        click.echo(f"{rate:.1f} images/s with {report['engine']}; peak memory {report['peak_rss'] / 2**20:.0f} MB "
+        loop = report["embedded"] / report["seconds"] if report["seconds"] else 0.0
+        whole = report["embedded"] / seconds if seconds else 0.0
+        click.echo(f"{loop:.1f} images/s while embedding with {report['engine']} ({report['seconds']:.1f} s); "
+                   f"{whole:.1f} images/s for the whole command ({seconds:.1f} s, start-up and scan included)")
+        click.echo(f"peak memory {report['peak_rss'] / 2**20:.0f} MB "
                    f"(+ {report['peak_rss_workers'] / 2**20:.0f} MB in decode workers)")
     if report["failed"] or report["known_failures"]:
         click.echo(f"See the reasons with: kinscope info --db {db}")
     _print_notes(report, db)
-    if report["interrupted"]:
-        click.echo("Interrupted: the finished batches are saved. Run the same command again to resume.", err=True)
-        sys.exit(130)
 
 
 def _print_renamed(done: dict, as_json: bool) -> None:
