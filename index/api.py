@@ -250,6 +250,13 @@ class Archive:
     def folders(self) -> list[dict]:
         return self.catalog.folders()
 
+    def resolve_folder(self, name: str, cwd: str | None = None) -> dict:
+        """A folder as a person names it (absolute, from `cwd`, or below the archive's top folder as the page
+        lists it) -> {folder (absolute, or None when no indexed item lies below any reading), items, tried}."""
+        from .search.folders import resolve
+
+        return resolve(name, self.folders(), self.catalog.known_roots(), cwd or os.getcwd())
+
     def thumbnail(self, item_id: int, size: int = 256) -> bytes:
         return self._image_call(media.thumbnail, item_id, size, self.db / media.THUMBS)
 

@@ -1,6 +1,7 @@
 """What a newcomer meets in the terminal: a busy port, progress in a log file, an empty folder, --folder."""
 from __future__ import annotations
 
+import json
 import os
 import socket
 import subprocess
@@ -57,10 +58,11 @@ def test_server_threads_and_routine_waitress_warnings(sample_archive):
 def first_run(tmp_path_factory):
     """`kinscope index` into a new database with its output going to pipes, as in `scripts/demo > log 2>&1`."""
     root = tmp_path_factory.mktemp("first_run")
-    (root / "imgs").mkdir()
     rng = np.random.default_rng(0)
     for i in range(6):
-        Image.fromarray(rng.integers(0, 255, (64, 72, 3), dtype=np.uint8)).save(root / "imgs" / f"{i}.png")
+        folder = root / "imgs" / ("2024-spring" if i < 3 else "2024-autumn")
+        folder.mkdir(parents=True, exist_ok=True)
+        Image.fromarray(rng.integers(0, 255, (64, 72, 3), dtype=np.uint8)).save(folder / f"{i}.png")
     out = _kinscope("index", root / "imgs", "--db", root / "db", "--layers", "colour,parts", timeout=300)
     assert out.returncode == 0, out
     return root, out
@@ -107,3 +109,33 @@ def test_index_with_no_image_files_says_so_and_creates_nothing(tmp_path, content
     assert not (tmp_path / "db").exists()
     out = _kinscope("index", tmp_path / "gone", "--db", tmp_path / "db")
     assert out.returncode == 2 and "no such file or folder" in out.stderr and not (tmp_path / "db").exists()
+
+
+def test_search_folder_takes_the_names_the_page_lists(first_run, tmp_path, monkeypatch):
+    """`--folder 2024-spring`, run from anywhere, keeps what the page's folder filter keeps (it sends the
+    absolute folder from /api/folders and shows it below the archive's top folder)."""
+    from click.testing import CliRunner
+
+    from index.cli import main
+    from web import create_app
+
+    root, _ = first_run
+    client = create_app({"KINSCOPE_DB": str(root / "db"), "TESTING": True}).test_client()
+    folders = [f["folder"] for f in client.get("/api/folders").get_json()["folders"]]
+    spring = next(f for f in folders if f.endswith("2024-spring"))
+    autumn_item = client.get("/api/items", query_string={"folder": folders[0]}).get_json()["items"][0]["id"]
+    page = client.get("/api/search", query_string={"item": autumn_item, "folder": spring, "k": 50,
+                                                   "layer": "colour"}).get_json()
+    expected = [r["id"] for r in page["results"]]
+    assert len(expected) == 3
+
+    monkeypatch.chdir(tmp_path)  # not the archive's folder: the name is the page's, not a path from here
+    out = CliRunner().invoke(main, ["search", "--id", str(autumn_item), "--folder", "2024-spring", "--db",
+                                    str(root / "db"), "--layer", "colour", "-k", "50", "--json"])
+    assert out.exit_code == 0, out.output
+    assert [r["id"] for r in json.loads(out.output)["results"]] == expected
+    for nowhere in ("2023-winter", "/nope"):
+        out = CliRunner().invoke(main, ["search", "--id", str(autumn_item), "--folder", nowhere, "--db",
+                                        str(root / "db")])
+        assert out.exit_code == 2 and "no indexed item lies below the folder" in out.output, out.output
+        assert "Traceback" not in out.output

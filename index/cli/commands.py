@@ -2,7 +2,6 @@
 from __future__ import annotations
 
 import json
-import os
 import sqlite3
 import sys
 import time
@@ -172,7 +171,8 @@ def _print_notes(report: dict, db: str) -> None:
 @click.option("--layer", help="Layer to compare on (default: the archive's default layer).")
 @click.option("-k", default=10, show_default=True, type=click.IntRange(1, 10000), help="How many results.")
 @click.option("--box", help="Search by a region only: x0,y0,x1,y1 as fractions of the image (0..1).")
-@click.option("--folder", help="Only results below this folder.")
+@click.option("--folder", help="Only results below this folder: a path, or a folder as the page lists it (below "
+              "the archive's top folder, e.g. 2024-spring).")
 @click.option("--json", "as_json", is_flag=True,
               help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
 def search(image, db, item_id, layer, k, box, folder, as_json):
@@ -185,9 +185,8 @@ def search(image, db, item_id, layer, k, box, folder, as_json):
             raise ValueError
     except ValueError:
         _fail(click.UsageError("--box takes four fractions: x0,y0,x1,y1"))
-    folder = os.path.abspath(folder) if folder else None
     result = on_archive(db, lambda archive: archive.search(item_id if item_id is not None else image, layer=layer,
-                                                           k=k, box=region, folder=folder))
+                                                           k=k, box=region, folder=_folder(archive, folder)))
     if as_json:
         keys = ("id", "path", "score", "width", "height")
         result = {key: result[key] for key in ("query", "layer")} | {
@@ -197,6 +196,17 @@ def search(image, db, item_id, layer, k, box, folder, as_json):
     click.echo(f"layer {result['layer']}; score = cosine similarity (1.0 = identical descriptor)")
     for rank, r in enumerate(result["results"], 1):
         click.echo(f"{rank:3d}  {r['score']:.4f}  {r['width']}x{r['height']}  id {r['id']:<6d} {r['path']}")
+
+
+def _folder(archive: Archive, name: str | None) -> str | None:
+    """--folder as an absolute folder with indexed items below it; none there ends the command in one line."""
+    if not name:
+        return None
+    found = archive.resolve_folder(name)
+    if found["folder"] is None:
+        _fail(f"no indexed item lies below the folder {name} (looked in {', '.join(found['tried'])}); give a folder "
+              "as the page lists it (below the archive's top folder), or a path")
+    return found["folder"]
 
 
 @main.command()
