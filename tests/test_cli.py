@@ -5,6 +5,7 @@ import json
 import subprocess
 import sys
 
+import click
 import numpy as np
 from click.testing import CliRunner
 from PIL import Image
@@ -64,3 +65,25 @@ def test_errors_are_one_line_without_a_traceback(tmp_path):
 def test_python_dash_m_index_runs_the_same_cli():
     out = subprocess.run([sys.executable, "-m", "index", "--help"], capture_output=True, text=True, check=True)
     assert "search" in out.stdout and "index" in out.stdout
+
+
+def test_help_is_whole_and_says_what_commands_do():
+    """The command list is not cut off with "...", serve says what it does, every option has help."""
+    runner = CliRunner()
+    listing = runner.invoke(main, ["--help"]).output.split("Commands:")[1]
+    assert listing.strip() and "..." not in listing
+    for group in (["roots"],):
+        assert "..." not in runner.invoke(main, [*group, "--help"]).output.split("Commands:")[1]
+    serve = runner.invoke(main, ["serve", "--help"]).output
+    assert "search page" in serve and "waitress" not in serve
+    assert "pick another when this one is busy" in serve
+    assert "Network whose layers to list" in runner.invoke(main, ["layers", "--help"]).output
+    for name, command in main.commands.items():
+        for param in command.params:
+            if isinstance(param, click.Option) and param.name != "help":
+                assert param.help, f"{name} {param.opts[0]} has no help text"
+
+
+def test_search_refuses_two_ids(tmp_path):
+    out = CliRunner().invoke(main, ["search", "--id", "65", "--id", "3", "--db", str(tmp_path)])
+    assert out.exit_code == 2 and "give one --id" in out.output and "65, 3" in out.output

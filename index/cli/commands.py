@@ -61,7 +61,7 @@ def main() -> None:
     quiet_pillow_warnings()  # decoders' warnings are recorded with the file, never printed
 
 
-@main.command("index")
+@main.command("index", short_help="Index the images below folders into a database (only changes).")
 @click.argument("paths", nargs=-1, required=True, type=click.Path())
 @click.option("--db", required=True, type=click.Path(file_okay=False), help=DB_HELP)
 @click.option("--layers", help="Comma-separated layers to keep: presets (colour, texture, parts, objects) or node "
@@ -164,10 +164,10 @@ def _print_notes(report: dict, db: str) -> None:
                    f"`kinscope roots forget {root} --db {db}`", err=True)
 
 
-@main.command()
+@main.command(short_help="Find the items most like an image file or an indexed item.")
 @click.argument("image", required=False, type=click.Path(dir_okay=False))
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
-@click.option("--id", "item_id", type=int, help="Search by an indexed item instead of a file.")
+@click.option("--id", "item_ids", type=int, multiple=True, help="Search by an indexed item instead of a file (one).")
 @click.option("--layer", help="Layer to compare on (default: the archive's default layer).")
 @click.option("-k", default=10, show_default=True, type=click.IntRange(1, 10000), help="How many results.")
 @click.option("--box", help="Search by a region only: x0,y0,x1,y1 as fractions of the image (0..1).")
@@ -175,8 +175,11 @@ def _print_notes(report: dict, db: str) -> None:
               "the archive's top folder, e.g. 2024-spring).")
 @click.option("--json", "as_json", is_flag=True,
               help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
-def search(image, db, item_id, layer, k, box, folder, as_json):
+def search(image, db, item_ids, layer, k, box, folder, as_json):
     """Find the items most like IMAGE (any file) or like indexed item --id N."""
+    if len(item_ids) > 1:
+        _fail(click.UsageError(f"give one --id: a search has one query (got {', '.join(map(str, item_ids))})"))
+    item_id = item_ids[0] if item_ids else None
     if (image is None) == (item_id is None):
         _fail(click.UsageError("give either IMAGE or --id N"))
     try:
@@ -209,7 +212,7 @@ def _folder(archive: Archive, name: str | None) -> str | None:
     return found["folder"]
 
 
-@main.command()
+@main.command(short_help="Counts, layers, network and the files that could not be read.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 def info(db, as_json):
@@ -250,8 +253,9 @@ def info(db, as_json):
             click.echo(f"  {f['path']}: {f['reason']}")
 
 
-@main.command()
-@click.option("--backbone", default=DEFAULT_BACKBONE, show_default=True, type=click.Choice(NAMES))
+@main.command(short_help="The layers a network offers, with channels, stride and presets.")
+@click.option("--backbone", default=DEFAULT_BACKBONE, show_default=True, type=click.Choice(NAMES),
+              help="Network whose layers to list (an archive's own is named by `kinscope info`).")
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 def layers(backbone, as_json):
     """The layers one can index for a backbone, with channels, spatial stride and presets."""
@@ -272,7 +276,7 @@ def layers(backbone, as_json):
                "Any other node name of the network's graph is accepted too.")
 
 
-@main.command()
+@main.command(short_help="Verify the archive (catalog, vector stores, files); --repair.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--repair", is_flag=True,
               help="Fix what can be fixed; re-embed only images whose descriptors are missing.")
@@ -300,17 +304,22 @@ def check(db, repair, as_json):
     sys.exit(0 if report["ok"] else 1)
 
 
-@main.command()
+@main.command(short_help="Serve the search page to your browser, from this machine.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (loopback by default).")
-@click.option("--port", default=8470, show_default=True, type=click.IntRange(1, 65535))
+@click.option("--port", default=8470, show_default=True, type=click.IntRange(1, 65535),
+              help="Port to listen on; pick another when this one is busy (say, a kinscope already serving).")
 @click.option("--token", envvar="KINSCOPE_TOKEN", help="Access token every request must carry; required off loopback "
               "(or set KINSCOPE_TOKEN).")
 @click.option("--allow-host", "allow_hosts", multiple=True, metavar="NAME",
               help="Another host name the page may be opened by (repeatable), e.g. a reverse proxy's. "
               "Requests naming any other host are refused.")
 def serve(db, host, port, token, allow_hosts):
-    """Start the search page on this machine (waitress WSGI server)."""
+    """Serve the search page of the archive in --db to a browser, from this machine.
+
+    Open the address it prints (http://127.0.0.1:8470/ by default) to search by an image or an item, see why
+    results matched, review duplicates and browse the map. It never changes, moves or deletes your files.
+    It runs until Ctrl-C; when the port is busy it says so (pick another with --port)."""
     try:
         from web.serve import ServeError, answered_names, bind, check_allow_host, check_binding, is_loopback
     except ImportError:

@@ -90,14 +90,15 @@ def _read_text(path: str) -> str:
         _fail(f"cannot read the plan {path}: {getattr(exc, 'strerror', None) or exc}")
 
 
-@click.command("duplicates")
+@click.command("duplicates", short_help="Find exact and near duplicate groups; never deletes anything.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--layer", help="Layer to compare on (default: objects, the one the benchmark calibrated).")
 @click.option("--threshold", type=float, help="Score at or above which two items are near duplicates "
               "(default: the calibrated value of the layer; see docs/duplicates.md).")
 @click.option("--cosine", "raw", is_flag=True, help="Threshold the raw cosine similarity instead of the score "
               "normalised against the archive's background similarity.")
-@click.option("--format", "fmt", type=click.Choice(["json", "csv"]), default="json", show_default=True)
+@click.option("--format", "fmt", type=click.Choice(["json", "csv"]), default="json", show_default=True,
+              help="JSON (groups with their members, evidence and calibration) or CSV (one row per member).")
 @click.option("--output", type=click.Path(dir_okay=False), help="Write the groups to this file instead of stdout.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False),
               help="Also write a static HTML page with thumbnails for review.")
@@ -166,7 +167,7 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
                    + (f" Review page: {report_path}." if report_path else ""), err=on_stdout)
 
 
-@click.command("restore")
+@click.command("restore", short_help="Put files moved aside by `duplicates --move-to` back.")
 @click.argument("manifest", type=click.Path(exists=True, dir_okay=False))
 @click.option("--apply", is_flag=True, help="Really move the files back (otherwise only print the plan).")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
