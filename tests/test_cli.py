@@ -87,3 +87,27 @@ def test_help_is_whole_and_says_what_commands_do():
 def test_search_refuses_two_ids(tmp_path):
     out = CliRunner().invoke(main, ["search", "--id", "65", "--id", "3", "--db", str(tmp_path)])
     assert out.exit_code == 2 and "give one --id" in out.output and "65, 3" in out.output
+
+
+def test_duplicates_output_gives_mtime_in_iso_8601_with_the_number_beside(tmp_path):
+    """1700000000.25 s after 1970 is 2023-11-14T22:13:20+00:00 (as GNU `date -u -d @1700000000.25
+    --iso-8601=seconds` prints it); the number stays as mtime_epoch."""
+    import csv
+    import io
+    import os
+    import shutil
+
+    _images(tmp_path / "imgs", 2)
+    shutil.copy(tmp_path / "imgs" / "0.png", tmp_path / "imgs" / "0-copy.png")
+    for name in ("0.png", "0-copy.png"):
+        os.utime(tmp_path / "imgs" / name, (1_700_000_000.25, 1_700_000_000.25))
+    runner = CliRunner()
+    db = str(tmp_path / "db")
+    assert runner.invoke(main, ["index", str(tmp_path / "imgs"), "--db", db, "-q", "--layers", "parts"]).exit_code == 0
+    doc = json.loads(runner.invoke(main, ["duplicates", "--db", db, "-q"]).output)
+    members = [m for g in doc["groups"] for m in g["members"]]
+    assert len(members) == 2
+    assert all(m["mtime"] == "2023-11-14T22:13:20+00:00" and m["mtime_epoch"] == 1_700_000_000.25 for m in members)
+    rows = list(csv.DictReader(io.StringIO(runner.invoke(main, ["duplicates", "--db", db, "-q", "--format",
+                                                                 "csv"]).output)))
+    assert [(r["mtime"], float(r["mtime_epoch"])) for r in rows] == [("2023-11-14T22:13:20+00:00", 1_700_000_000.25)] * 2

@@ -4,6 +4,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+from datetime import datetime, timezone
 
 import click
 
@@ -12,7 +13,26 @@ from .shared import DB_HELP
 from .shared import fail as _fail
 
 CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
-               "size", "mtime", "sha256", "exact_group")
+               "size", "mtime", "mtime_epoch", "sha256", "exact_group")
+
+
+def iso_time(epoch) -> str | None:
+    """Seconds since 1970 -> ISO 8601 in UTC with its offset (2024-03-05T14:07:09+00:00)."""
+    return None if epoch is None else datetime.fromtimestamp(float(epoch), timezone.utc).isoformat(timespec="seconds")
+
+
+def dated(doc: dict) -> dict:
+    """The doc as the command writes it: each member's `mtime` in ISO 8601, the number kept as `mtime_epoch`.
+    (Archive.duplicates keeps the number in `mtime`: the HTML report and the review page read it.)"""
+    def member(m: dict) -> dict:
+        if "mtime" not in m:
+            return m
+        out = {}
+        for key, value in m.items():
+            out.update({"mtime": iso_time(value), "mtime_epoch": value} if key == "mtime" else {key: value})
+        return out
+
+    return {**doc, "groups": [{**g, "members": [member(m) for m in g["members"]]} for g in doc.get("groups", [])]}
 
 
 def to_csv(doc: dict) -> str:
@@ -148,7 +168,11 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
         _fail(exc)
     if move_to:
         _print_moves(doc["quarantine"], err=on_stdout)  # before the output: what moved is said whatever follows
-    text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else (Archive.plan_csv(doc) if plan_path else to_csv(doc))
+    shown = doc if plan_path else dated(doc)
+    if fmt == "json":
+        text = json.dumps(shown, indent=2) + "\n"
+    else:
+        text = Archive.plan_csv(doc) if plan_path else to_csv(shown)
     if on_stdout:
         click.echo(text, nl=False)
     else:
