@@ -111,6 +111,19 @@ def test_index_with_no_image_files_says_so_and_creates_nothing(tmp_path, content
     assert out.returncode == 2 and "no such file or folder" in out.stderr and not (tmp_path / "db").exists()
 
 
+def test_index_into_an_existing_database_says_when_a_folder_holds_no_image(first_run, tmp_path):
+    """An existing database is kept (the run may have removed rows); the run says it found nothing."""
+    from click.testing import CliRunner
+
+    from index.cli import main
+
+    root, _ = first_run
+    (tmp_path / "notes").mkdir()
+    (tmp_path / "notes" / "notes.txt").write_text("not an image")
+    out = CliRunner().invoke(main, ["index", str(tmp_path / "notes"), "--db", str(root / "db"), "-q"])
+    assert out.exit_code == 0 and "no image files found below" in out.output, out.output
+
+
 def test_search_folder_takes_the_names_the_page_lists(first_run, tmp_path, monkeypatch):
     """`--folder 2024-spring`, run from anywhere, keeps what the page's folder filter keeps (it sends the
     absolute folder from /api/folders and shows it below the archive's top folder)."""
