@@ -116,7 +116,8 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, e
         click.echo(json.dumps(report, indent=2))
         return
     _print_summary(report, db, time.perf_counter() - started)
-    if not any(report[key] for key in ("new", "changed", "moved", "removed", "unchanged", "failed")):
+    found = ("new", "changed", "moved", "removed", "unchanged", "failed", "known_failures")
+    if not any(report[key] for key in found):
         click.echo(f"no image files found below {', '.join(paths)} (kinscope reads {IMAGE_KINDS})")
     if report["interrupted"]:
         click.echo("Interrupted: the finished batches are saved. Run the same command again to resume.", err=True)
