@@ -21,7 +21,7 @@ from .db.catalog import Catalog
 from .db.folder import CatalogProblem, open_catalog, sqlite_message
 from .duplicates.jobs import DuplicateJobs
 from .images import renditions as media
-from .images.decode import DecodeError, open_image
+from .images.decode import SUPPORTED_EXTENSIONS, DecodeError, open_image
 from .images.decode_memory import quiet_pillow_warnings
 from .images.preprocess import decode_side, fit_square
 from .images.renditions import DISPLAY_SIDE
@@ -38,10 +38,12 @@ from .search.nearest import item_date, nearest, row_filter
 from .vectors.kinds import bytes_per_vector_of, type_name
 from .vectors.reader import Reader, VectorStore
 
+IMAGE_KINDS = ", ".join(sorted(e.lstrip(".") for e in SUPPORTED_EXTENSIONS))  # for messages
+
 # Archive, and what else the CLI and web/ may use: they import nothing from index but this module.
-__all__ = ["Archive", "ArchiveError", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "NAMES",
-           "connect_cluster", "fit_square", "item_date", "open_image", "quiet_pillow_warnings", "sqlite_message",
-           "type_name"]
+__all__ = ["Archive", "ArchiveError", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "IMAGE_KINDS",
+           "NAMES", "connect_cluster", "fit_square", "item_date", "open_image", "quiet_pillow_warnings",
+           "sqlite_message", "type_name"]
 
 
 class Archive(DuplicateJobs, MapJobs):
@@ -252,6 +254,13 @@ class Archive(DuplicateJobs, MapJobs):
     def folders(self) -> list[dict]:
         return self.catalog.folders()
 
+    def resolve_folder(self, name: str, cwd: str | None = None) -> dict:
+        """A folder as a person names it (absolute, from `cwd`, or below the archive's top folder as the page
+        lists it) -> {folder (absolute, or None when no indexed item lies below any reading), items, tried}."""
+        from .search.folders import resolve
+
+        return resolve(name, self.folders(), self.catalog.known_roots(), cwd or os.getcwd())
+
     def thumbnail(self, item_id: int, size: int = 256) -> bytes:
         return self._image_call(media.thumbnail, item_id, size, self.db / media.THUMBS)
 
@@ -337,6 +346,21 @@ class Archive(DuplicateJobs, MapJobs):
         if recorded and "stores" in self.manifest:
             return recorded
         return self.store(layer).index_info()  # an archive from before segments, or never checkpointed
+
+    @staticmethod
+    def exists(db: str | os.PathLike) -> bool:
+        """Whether folder `db` holds a kinscope database (its manifest), without opening it."""
+        return (Path(db) / mf.FILE).is_file()
+
+    @staticmethod
+    def finds_images(paths: Iterable[str | os.PathLike]) -> bool:
+        """Whether `add(paths)` would find any file to index (it stops at the first one found)."""
+        from .ingest.scan import finds_images
+
+        try:
+            return finds_images(paths)
+        except FileNotFoundError as exc:
+            raise ArchiveError(str(exc)) from None
 
     @staticmethod
     def available_layers(backbone: str = DEFAULT_BACKBONE, weights: str | None = None) -> dict:

@@ -41,7 +41,8 @@ SCANNER_BED = (206, 204, 198)  # the grey lid of the flatbed, visible around ske
 SCANNER_MAKE = "Studio flatbed"
 KEY_NAME = "key.csv"
 README_NAME = "README.md"
-KEY_FIELDS = ["path", "kind", "source", "motif", "colourway", "notes"]
+KEY_FIELDS = ["path", "kind", "source", "motif", "colourway", "notes", "modified"]
+OLD_KEY_FIELDS = KEY_FIELDS[:-1]  # keys written before `modified` was recorded
 
 # name: (background, main, second, accent)
 COLOURWAYS = {
@@ -635,7 +636,9 @@ like a fabric scan. Nothing here depicts real people, places or products.
 - `{INBOX_DIR}/` ({count[INBOX_DIR]}): broken uploads (an empty file, a truncated JPEG, a text
   file named `.png`) to show how failures are reported.
 - `{KEY_NAME}`: the answer key (`{",".join(KEY_FIELDS)}`);
-  `source` names the original a re-scan or copy came from.
+  `source` names the original a re-scan or copy came from, `modified` the file's
+  modification time (git does not keep it: `python scripts/demo_dates.py` sets it
+  again, and `scripts/demo` does so before indexing).
 
 Regenerate with `python scripts/make_demo_archive.py` (deterministic; it only
 replaces files listed in its own `{KEY_NAME}`).
@@ -653,7 +656,7 @@ def owned_files(out: Path) -> set[Path]:
         return set()
     with key.open(newline="", encoding="utf-8") as f:
         reader = csv.DictReader(f)
-        if reader.fieldnames != KEY_FIELDS:
+        if reader.fieldnames not in (KEY_FIELDS, OLD_KEY_FIELDS):
             return set()
         listed = {out / row["path"] for row in reader}
     return listed | {key, out / README_NAME}
@@ -708,7 +711,7 @@ def write_archive(out: Path, entries: list[Entry]) -> None:
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(KEY_FIELDS)
     for e in entries:
-        writer.writerow([e.path, e.kind, e.source, e.motif, e.colourway, e.notes])
+        writer.writerow([e.path, e.kind, e.source, e.motif, e.colourway, e.notes, e.when.isoformat()])
     for name, text in ((KEY_NAME, buf.getvalue()), (README_NAME, readme_text(entries))):
         (out / name).write_text(text, encoding="utf-8", newline="\n")
         os.utime(out / name, (stamp(done), stamp(done)))

@@ -5,6 +5,7 @@ import json
 import subprocess
 import sys
 
+import click
 import numpy as np
 from click.testing import CliRunner
 from PIL import Image
@@ -109,3 +110,49 @@ def test_apply_with_a_report_refuses_files_of_groups_the_report_leaves_out(tmp_p
     again = runner.invoke(main, args + ["--apply"])
     assert again.exit_code == 0, again.output
     assert sum(f["status"] == "moved" for f in json.loads(again.stdout)["quarantine"]["files"]) == 3
+
+
+def test_help_is_whole_and_says_what_commands_do():
+    """The command list is not cut off with "...", serve says what it does, every option has help."""
+    runner = CliRunner()
+    listing = runner.invoke(main, ["--help"]).output.split("Commands:")[1]
+    assert listing.strip() and "..." not in listing
+    for group in (["roots"],):
+        assert "..." not in runner.invoke(main, [*group, "--help"]).output.split("Commands:")[1]
+    serve = runner.invoke(main, ["serve", "--help"]).output
+    assert "search page" in serve and "waitress" not in serve
+    assert "pick another when this one is busy" in serve
+    assert "Network whose layers to list" in runner.invoke(main, ["layers", "--help"]).output
+    for name, command in main.commands.items():
+        for param in command.params:
+            if isinstance(param, click.Option) and param.name != "help":
+                assert param.help, f"{name} {param.opts[0]} has no help text"
+
+
+def test_search_refuses_two_ids(tmp_path):
+    out = CliRunner().invoke(main, ["search", "--id", "65", "--id", "3", "--db", str(tmp_path)])
+    assert out.exit_code == 2 and "give one --id" in out.output and "65, 3" in out.output
+
+
+def test_duplicates_output_gives_mtime_in_iso_8601_with_the_number_beside(tmp_path):
+    """1700000000.25 s after 1970 is 2023-11-14T22:13:20+00:00 (as GNU `date -u -d @1700000000.25
+    --iso-8601=seconds` prints it); the number stays as mtime_epoch."""
+    import csv
+    import io
+    import os
+    import shutil
+
+    _images(tmp_path / "imgs", 2)
+    shutil.copy(tmp_path / "imgs" / "0.png", tmp_path / "imgs" / "0-copy.png")
+    for name in ("0.png", "0-copy.png"):
+        os.utime(tmp_path / "imgs" / name, (1_700_000_000.25, 1_700_000_000.25))
+    runner = CliRunner()
+    db = str(tmp_path / "db")
+    assert runner.invoke(main, ["index", str(tmp_path / "imgs"), "--db", db, "-q", "--layers", "parts"]).exit_code == 0
+    doc = json.loads(runner.invoke(main, ["duplicates", "--db", db, "-q"]).output)
+    members = [m for g in doc["groups"] for m in g["members"]]
+    assert len(members) == 2
+    assert all(m["mtime"] == "2023-11-14T22:13:20+00:00" and m["mtime_epoch"] == 1_700_000_000.25 for m in members)
+    rows = list(csv.DictReader(io.StringIO(runner.invoke(main, ["duplicates", "--db", db, "-q", "--format",
+                                                                 "csv"]).output)))
+    assert [(r["mtime"], float(r["mtime_epoch"])) for r in rows] == [("2023-11-14T22:13:20+00:00", 1_700_000_000.25)] * 2

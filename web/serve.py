@@ -58,13 +58,67 @@ def free_port(host: str = "127.0.0.1") -> int:
         return s.getsockname()[1]
 
 
-def serve(db: str, host: str, port: int, token: str | None, threads: int = 4,
-          allow_hosts: tuple[str, ...] = ()) -> None:
-    from waitress import serve as waitress_serve
+THREADS = 8  # a results page asks for 24 thumbnails at once; 8 answer them without a long queue on a laptop
+
+
+class PortBusy(ServeError):
+    pass
+
+
+def limit_malloc_arenas() -> None:
+    """glibc gives threads up to 8 malloc arenas per core, each keeping freed memory: with 8 threads the mixed
+    load test (scripts/load_test.py) grew the server by 450 MB against 200 MB with 4 threads; at one arena per
+    core (at least 2) it grew 113 MB. Set before waitress starts its threads; elsewhere than glibc, nothing."""
+    import ctypes
+    import ctypes.util
+    import os
+
+    try:
+        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+    except (OSError, AttributeError):
+        return
+    mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
+    mallopt(-8, max(2, os.cpu_count() or 1))  # M_ARENA_MAX, from glibc's malloc.h
+
+
+def quiet_routine_logs() -> None:
+    """waitress logs "Task queue depth is N" at WARNING whenever requests wait for a thread: routine while a
+    page loads its thumbnails, but it reads like an error. Keep that logger to errors; everything else of
+    waitress (exceptions while serving, for one) still reaches the terminal."""
+    import logging
+
+    logging.basicConfig(format="%(levelname)s:%(name)s:%(message)s")
+    logging.getLogger("waitress.queue").setLevel(logging.ERROR)
+
+
+def bind(db: str, host: str, port: int, token: str | None, threads: int = THREADS,
+         allow_hosts: tuple[str, ...] = ()):
+    """The server, listening on host:port (not yet answering: call .run()). PortBusy when another program
+    holds the port, so that nothing claims to serve before the socket is ours."""
+    import errno
+
+    from waitress.server import create_server
 
     from . import create_app
 
     check_binding(host, token)
     app = create_app({"KINSCOPE_DB": db, "KINSCOPE_TOKEN": token, "KINSCOPE_LISTEN": host, "KINSCOPE_PORT": port,
                       "KINSCOPE_ALLOW_HOSTS": tuple(allow_hosts)})
-    waitress_serve(app, host=host, port=port, threads=threads, ident="kinscope", clear_untrusted_proxy_headers=True)
+    quiet_routine_logs()
+    limit_malloc_arenas()
+    try:
+        return create_server(app, host=host, port=port, threads=threads, ident="kinscope",
+                             clear_untrusted_proxy_headers=True)
+    except OSError as exc:
+        if exc.errno == errno.EADDRINUSE:
+            raise PortBusy(f"port {port} on {host} is busy (another program, or a kinscope already serving, "
+                           "listens there); pick another with --port N") from None
+        if exc.errno == errno.EACCES:
+            raise PortBusy(f"port {port} on {host} needs privileges this user lacks; pick another with --port N "
+                           "(1024 or above)") from None
+        raise ServeError(f"cannot listen on {host}:{port}: {exc.strerror or exc}") from None
+
+
+def serve(db: str, host: str, port: int, token: str | None, threads: int = THREADS,
+          allow_hosts: tuple[str, ...] = ()) -> None:
+    bind(db, host, port, token, threads, allow_hosts).run()

@@ -2,14 +2,14 @@
 from __future__ import annotations
 
 import json
-import os
 import sqlite3
 import sys
+import time
 
 import click
 
-from ..api import (DEFAULT_BACKBONE, ENGINES, NAMES, Archive, ArchiveError, connect_cluster, quiet_pillow_warnings,
-                   sqlite_message, type_name)
+from ..api import (DEFAULT_BACKBONE, ENGINES, IMAGE_KINDS, NAMES, Archive, ArchiveError, connect_cluster,
+                   quiet_pillow_warnings, sqlite_message, type_name)
 from .shared import DB_HELP, on_archive
 from .shared import fail as _fail
 
@@ -61,7 +61,7 @@ def main() -> None:
     quiet_pillow_warnings()  # decoders' warnings are recorded with the file, never printed
 
 
-@main.command("index")
+@main.command("index", short_help="Index the images below folders into a database (only changes).")
 @click.argument("paths", nargs=-1, required=True, type=click.Path())
 @click.option("--db", required=True, type=click.Path(file_okay=False), help=DB_HELP)
 @click.option("--layers", help="Comma-separated layers to keep: presets (colour, texture, parts, objects) or node "
@@ -90,9 +90,16 @@ def main() -> None:
 def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, engine, workers, file_timeout, cluster,
               checkpoint_every, moved_from, quiet, as_json):
     """Index every image below PATHS into --db; re-running only does what changed."""
+    started = time.perf_counter()
     if moved_from and len(paths) != 1:
         _fail(click.UsageError("--moved-from takes exactly one PATH: the folder's new place"))
+    new = not Archive.exists(db)
     try:
+        if new and not moved_from and not Archive.finds_images(paths):
+            _fail(f"no image files found below {', '.join(paths)} (kinscope reads {IMAGE_KINDS}); "
+                  f"no database was created")
+        if new and not moved_from and not quiet:  # the next half minute is quiet otherwise
+            click.echo(f"kinscope: new database {db}: preparing the network (once per model)...", err=True)
         with Archive.open(db, create=not moved_from, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
                           whiten=whiten, weights=weights) as archive:
             if moved_from:
@@ -108,21 +115,32 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, e
     if as_json:
         click.echo(json.dumps(report, indent=2))
         return
+    _print_summary(report, db, time.perf_counter() - started)
+    found = ("new", "changed", "moved", "removed", "unchanged", "failed", "known_failures")
+    if not any(report[key] for key in found):
+        click.echo(f"no image files found below {', '.join(paths)} (kinscope reads {IMAGE_KINDS})")
+    if report["interrupted"]:
+        click.echo("Interrupted: the finished batches are saved. Run the same command again to resume.", err=True)
+        sys.exit(130)
+
+
+def _print_summary(report: dict, db: str, seconds: float) -> None:
+    """The counts; the embedding loop's rate beside the whole command's (start-up and scan included)."""
     click.echo(
         f"{report['new']} new, {report['changed']} changed, {report['moved']} moved, {report['removed']} removed, "
         f"{report['unchanged']} unchanged; {report['embedded']} embedded, {report['failed']} could not be read"
         + (f" ({report['known_failures']} known failures not retried)" if report["known_failures"] else "")
     )
     if report.get("engine"):
-        rate = report["embedded"] / report["seconds"] if report["seconds"] else 0.0
-        click.echo(f"{rate:.1f} images/s with {report['engine']}; peak memory {report['peak_rss'] / 2**20:.0f} MB "
+        loop = report["embedded"] / report["seconds"] if report["seconds"] else 0.0
+        whole = report["embedded"] / seconds if seconds else 0.0
+        click.echo(f"{loop:.1f} images/s while embedding with {report['engine']} ({report['seconds']:.1f} s); "
+                   f"{whole:.1f} images/s for the whole command ({seconds:.1f} s, start-up and scan included)")
+        click.echo(f"peak memory {report['peak_rss'] / 2**20:.0f} MB "
                    f"(+ {report['peak_rss_workers'] / 2**20:.0f} MB in decode workers)")
     if report["failed"] or report["known_failures"]:
         click.echo(f"See the reasons with: kinscope info --db {db}")
     _print_notes(report, db)
-    if report["interrupted"]:
-        click.echo("Interrupted: the finished batches are saved. Run the same command again to resume.", err=True)
-        sys.exit(130)
 
 
 def _print_renamed(done: dict, as_json: bool) -> None:
@@ -149,18 +167,22 @@ def _print_notes(report: dict, db: str) -> None:
                    f"`kinscope roots forget {root} --db {db}`", err=True)
 
 
-@main.command()
+@main.command(short_help="Find the items most like an image file or an indexed item.")
 @click.argument("image", required=False, type=click.Path(dir_okay=False))
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
-@click.option("--id", "item_id", type=int, help="Search by an indexed item instead of a file.")
+@click.option("--id", "item_ids", type=int, multiple=True, help="Search by an indexed item instead of a file (one).")
 @click.option("--layer", help="Layer to compare on (default: the archive's default layer).")
 @click.option("-k", default=10, show_default=True, type=click.IntRange(1, 10000), help="How many results.")
 @click.option("--box", help="Search by a region only: x0,y0,x1,y1 as fractions of the image (0..1).")
-@click.option("--folder", help="Only results below this folder.")
+@click.option("--folder", help="Only results below this folder: a path, or a folder as the page lists it (below "
+              "the archive's top folder, e.g. 2024-spring).")
 @click.option("--json", "as_json", is_flag=True,
               help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
-def search(image, db, item_id, layer, k, box, folder, as_json):
+def search(image, db, item_ids, layer, k, box, folder, as_json):
     """Find the items most like IMAGE (any file) or like indexed item --id N."""
+    if len(item_ids) > 1:
+        _fail(click.UsageError(f"give one --id: a search has one query (got {', '.join(map(str, item_ids))})"))
+    item_id = item_ids[0] if item_ids else None
     if (image is None) == (item_id is None):
         _fail(click.UsageError("give either IMAGE or --id N"))
     try:
@@ -169,9 +191,8 @@ def search(image, db, item_id, layer, k, box, folder, as_json):
             raise ValueError
     except ValueError:
         _fail(click.UsageError("--box takes four fractions: x0,y0,x1,y1"))
-    folder = os.path.abspath(folder) if folder else None
     result = on_archive(db, lambda archive: archive.search(item_id if item_id is not None else image, layer=layer,
-                                                           k=k, box=region, folder=folder))
+                                                           k=k, box=region, folder=_folder(archive, folder)))
     if as_json:
         keys = ("id", "path", "score", "width", "height")
         result = {key: result[key] for key in ("query", "layer")} | {
@@ -183,7 +204,18 @@ def search(image, db, item_id, layer, k, box, folder, as_json):
         click.echo(f"{rank:3d}  {r['score']:.4f}  {r['width']}x{r['height']}  id {r['id']:<6d} {r['path']}")
 
 
-@main.command()
+def _folder(archive: Archive, name: str | None) -> str | None:
+    """--folder as an absolute folder with indexed items below it; none there ends the command in one line."""
+    if not name:
+        return None
+    found = archive.resolve_folder(name)
+    if found["folder"] is None:
+        _fail(f"no indexed item lies below the folder {name} (looked in {', '.join(found['tried'])}); give a folder "
+              "as the page lists it (below the archive's top folder), or a path")
+    return found["folder"]
+
+
+@main.command(short_help="Counts, layers, network and the files that could not be read.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 def info(db, as_json):
@@ -224,8 +256,9 @@ def info(db, as_json):
             click.echo(f"  {f['path']}: {f['reason']}")
 
 
-@main.command()
-@click.option("--backbone", default=DEFAULT_BACKBONE, show_default=True, type=click.Choice(NAMES))
+@main.command(short_help="The layers a network offers, with channels, stride and presets.")
+@click.option("--backbone", default=DEFAULT_BACKBONE, show_default=True, type=click.Choice(NAMES),
+              help="Network whose layers to list (an archive's own is named by `kinscope info`).")
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 def layers(backbone, as_json):
     """The layers one can index for a backbone, with channels, spatial stride and presets."""
@@ -246,7 +279,7 @@ def layers(backbone, as_json):
                "Any other node name of the network's graph is accepted too.")
 
 
-@main.command()
+@main.command(short_help="Verify the archive (catalog, vector stores, files); --repair.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--repair", is_flag=True,
               help="Fix what can be fixed; re-embed only images whose descriptors are missing.")
@@ -274,20 +307,24 @@ def check(db, repair, as_json):
     sys.exit(0 if report["ok"] else 1)
 
 
-@main.command()
+@main.command(short_help="Serve the search page to your browser, from this machine.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (loopback by default).")
-@click.option("--port", default=8470, show_default=True, type=click.IntRange(1, 65535))
+@click.option("--port", default=8470, show_default=True, type=click.IntRange(1, 65535),
+              help="Port to listen on; pick another when this one is busy (say, a kinscope already serving).")
 @click.option("--token", envvar="KINSCOPE_TOKEN", help="Access token every request must carry; required off loopback "
               "(or set KINSCOPE_TOKEN).")
 @click.option("--allow-host", "allow_hosts", multiple=True, metavar="NAME",
               help="Another host name the page may be opened by (repeatable), e.g. a reverse proxy's. "
               "Requests naming any other host are refused.")
 def serve(db, host, port, token, allow_hosts):
-    """Start the search page on this machine (waitress WSGI server)."""
+    """Serve the search page of the archive in --db to a browser, from this machine.
+
+    Open the address it prints (http://127.0.0.1:8470/ by default) to search by an image or an item, see why
+    results matched, review duplicates and browse the map. It never changes, moves or deletes your files.
+    It runs until Ctrl-C; when the port is busy it says so (pick another with --port)."""
     try:
-        from web.serve import (ServeError, answered_names, check_allow_host, check_binding, is_loopback,
-                               serve as run_server)
+        from web.serve import ServeError, answered_names, bind, check_allow_host, check_binding, is_loopback
     except ImportError:
         _fail("the web page needs Flask and waitress: pip install -e .")
     try:
@@ -295,6 +332,7 @@ def serve(db, host, port, token, allow_hosts):
         allow_hosts = tuple(check_allow_host(name) for name in allow_hosts)
         with Archive.open(db):
             pass
+        server = bind(db, host, port, token, allow_hosts=allow_hosts)  # listening from here: only now say so
     except (ServeError, ArchiveError) as exc:
         _fail(exc)
     shown = f"[{host}]" if ":" in host else host
@@ -303,7 +341,10 @@ def serve(db, host, port, token, allow_hosts):
              "Other machines can reach it with the token; over plain HTTP the token and the images travel "
              "unencrypted, so use a private network or an HTTPS proxy in front (see --allow-host). ")
     click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
-    run_server(db, host, port, token, allow_hosts=allow_hosts)
+    try:
+        server.run()  # until Ctrl-C (waitress handles it and stops its threads)
+    finally:
+        server.close()
 
 
 from .duplicates import duplicates_cmd, restore_cmd  # noqa: E402

@@ -4,6 +4,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+from datetime import datetime, timezone
 
 import click
 
@@ -12,7 +13,26 @@ from .shared import DB_HELP
 from .shared import fail as _fail
 
 CSV_COLUMNS = ("group", "kind", "keeper", "kept_because", "id", "path", "score", "cosine", "width", "height",
-               "size", "mtime", "sha256", "exact_group")
+               "size", "mtime", "mtime_epoch", "sha256", "exact_group")
+
+
+def iso_time(epoch) -> str | None:
+    """Seconds since 1970 -> ISO 8601 in UTC with its offset (2024-03-05T14:07:09+00:00)."""
+    return None if epoch is None else datetime.fromtimestamp(float(epoch), timezone.utc).isoformat(timespec="seconds")
+
+
+def dated(doc: dict) -> dict:
+    """The doc as the command writes it: each member's `mtime` in ISO 8601, the number kept as `mtime_epoch`.
+    (Archive.duplicates keeps the number in `mtime`: the HTML report and the review page read it.)"""
+    def member(m: dict) -> dict:
+        if "mtime" not in m:
+            return m
+        out = {}
+        for key, value in m.items():
+            out.update({"mtime": iso_time(value), "mtime_epoch": value} if key == "mtime" else {key: value})
+        return out
+
+    return {**doc, "groups": [{**g, "members": [member(m) for m in g["members"]]} for g in doc.get("groups", [])]}
 
 
 def to_csv(doc: dict) -> str:
@@ -105,14 +125,15 @@ def _read_text(path: str) -> str:
         _fail(f"cannot read the plan {path}: {getattr(exc, 'strerror', None) or exc}")
 
 
-@click.command("duplicates")
+@click.command("duplicates", short_help="Find exact and near duplicate groups; never deletes anything.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--layer", help="Layer to compare on (default: objects, the one the benchmark calibrated).")
 @click.option("--threshold", type=float, help="Score at or above which two items are near duplicates "
               "(default: the calibrated value of the layer; see docs/duplicates.md).")
 @click.option("--cosine", "raw", is_flag=True, help="Threshold the raw cosine similarity instead of the score "
               "normalised against the archive's background similarity.")
-@click.option("--format", "fmt", type=click.Choice(["json", "csv"]), default="json", show_default=True)
+@click.option("--format", "fmt", type=click.Choice(["json", "csv"]), default="json", show_default=True,
+              help="JSON (groups with their members, evidence and calibration) or CSV (one row per member).")
 @click.option("--output", type=click.Path(dir_okay=False), help="Write the groups to this file instead of stdout.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False),
               help="Also write a static HTML page with thumbnails for review.")
@@ -169,7 +190,11 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
         _fail(exc)
     if move_to:
         _print_moves(doc["quarantine"], err=on_stdout)  # before the output: what moved is said whatever follows
-    text = json.dumps(doc, indent=2) + "\n" if fmt == "json" else (Archive.plan_csv(doc) if plan_path else to_csv(doc))
+    shown = doc if plan_path else dated(doc)
+    if fmt == "json":
+        text = json.dumps(shown, indent=2) + "\n"
+    else:
+        text = Archive.plan_csv(doc) if plan_path else to_csv(shown)
     if on_stdout:
         click.echo(text, nl=False)
     else:
@@ -188,7 +213,7 @@ def duplicates_cmd(db, layer, threshold, raw, fmt, output, report_path, move_to,
                    + (f" Review page: {report_path}." if report_path else ""), err=on_stdout)
 
 
-@click.command("restore")
+@click.command("restore", short_help="Put files moved aside by `duplicates --move-to` back.")
 @click.argument("manifest", type=click.Path(exists=True, dir_okay=False))
 @click.option("--apply", is_flag=True, help="Really move the files back (otherwise only print the plan).")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")

@@ -9,7 +9,7 @@ import click
 from .shared import DB_HELP, on_archive
 
 
-@click.command("map")
+@click.command("map", short_help="Make or update the map of the archive shown on the page.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--layer", help="Layer whose descriptors place the items (default: the archive's default layer).")
 @click.option("--full", is_flag=True, help="Lay every item out anew instead of placing only the new ones.")

@@ -8,7 +8,7 @@ import click
 from .shared import DB_HELP, on_archive
 
 
-@click.group("roots")
+@click.group("roots", short_help="Indexed folders: list, rename one that moved, forget one.")
 def roots_cmd() -> None:
     """The folders indexed into an archive: list them, say where one went, or forget one.
 
@@ -16,7 +16,7 @@ def roots_cmd() -> None:
     `rename` re-points them, keeping every descriptor; `forget` drops them. Files are never touched."""
 
 
-@roots_cmd.command("list")
+@roots_cmd.command("list", short_help="Every indexed folder with its images, and whether it is still there.")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--json", "as_json", is_flag=True, help="Print JSON: [{root, rows, state}].")
 def list_cmd(db, as_json):
@@ -32,7 +32,7 @@ def list_cmd(db, as_json):
                    "`kinscope roots forget OLD --db DB`.")
 
 
-@roots_cmd.command("rename")
+@roots_cmd.command("rename", short_help="Say that folder OLD is now at NEW (nothing embedded again).")
 @click.argument("old")
 @click.argument("new", type=click.Path(exists=True))
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
@@ -53,7 +53,7 @@ def rename_cmd(old, new, db, as_json):
         click.echo(f"Run `kinscope index {done['new']} --db {db}` to bring the rest up to date.")
 
 
-@roots_cmd.command("forget")
+@roots_cmd.command("forget", short_help="Drop the rows below ROOT and their descriptors (files untouched).")
 @click.argument("root")
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--even-if-present", is_flag=True, help="Forget a root that still exists (its descriptors are dropped; "

@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..common.progress import bar as progress_bar
+
 BACKGROUND_SAMPLE = 500  # random reference sample measuring each item's background
 BACKGROUND_RANK = 10  # background = similarity to the item's 10th most similar sample member ...
 BACKGROUND_CEILING_MADS = None  # no cap (was median + 5 MAD): screening now keeps copies out, and a cap held
@@ -38,9 +40,7 @@ RULE = (
 
 
 def _bar(total: int, desc: str, progress: bool):
-    from tqdm import tqdm
-
-    return tqdm(total=total, desc=desc, unit="item", disable=not progress, leave=False, dynamic_ncols=True)
+    return progress_bar(total, desc, enabled=progress, leave=False)  # plain lines in a log
 
 
 def background(vectors: np.ndarray, *, sample: int = BACKGROUND_SAMPLE, rank: int = BACKGROUND_RANK,

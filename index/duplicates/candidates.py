@@ -10,6 +10,7 @@ import os
 
 import numpy as np
 
+from ..common.progress import bar as progress_bar
 from .background import normalise
 
 NEIGHBOURS = 32  # candidate neighbours per item; a star group holds at most NEIGHBOURS + 1 items
@@ -26,9 +27,7 @@ def _f32(x: np.ndarray) -> np.ndarray:
 
 
 def _bar(total: int, desc: str, progress: bool):
-    from tqdm import tqdm
-
-    return tqdm(total=total, desc=desc, unit="item", disable=not progress, leave=False, dynamic_ncols=True)
+    return progress_bar(total, desc, enabled=progress, leave=False)  # plain lines in a log
 
 
 def _threads() -> None:

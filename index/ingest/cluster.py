@@ -10,13 +10,12 @@ lost with a dead worker is recomputed by Dask on another worker; applying a chun
 """
 from __future__ import annotations
 
-import sys
 import time
 from typing import Callable
 
 import numpy as np
-from tqdm import tqdm
 
+from ..common.progress import bar as progress_bar
 from ..model.settings import layer_specs, weights_file
 from .pipeline import Job, RunCounts
 
@@ -104,8 +103,7 @@ def run(
 
     started = time.monotonic()
     counts = RunCounts(engine="torch (cluster)")
-    bar = tqdm(total=len(jobs), unit="img", disable=not progress, file=sys.stderr, dynamic_ncols=True,
-               desc="indexing on the cluster")
+    bar = progress_bar(len(jobs), "indexing on the cluster", unit="img", enabled=progress)
     chunks = [[(j.id, j.path) for j in jobs[i : i + chunk_size]] for i in range(0, len(jobs), chunk_size)]
     window = max(4, 2 * len(client.scheduler_info().get("workers", {})) + 2)  # bounded: memory stays flat
     since = 0

@@ -230,7 +230,7 @@ class Indexer:
                                     checkpoint_every, progress)
         embedder = None
         if jobs:
-            embedder = self.embedder_for_run(runtime.get("engine", "auto"), len(jobs))
+            embedder = self.embedder_for_run(runtime.get("engine", "auto"), len(jobs), say=progress)
             runtime["engine_used"] = embedder.engine.name
         counts = run(jobs, embedder, on_batch, on_failures, checkpoint, batch_size=batch_size,
                      checkpoint_every=checkpoint_every, readers=workers, file_timeout=file_timeout,
@@ -247,9 +247,10 @@ class Indexer:
         return {**report, "run_id": run_id, "interrupted": interrupted, "known_failures": cs.known_failures, **speed,
                 "skipped": self._skipped, "gone_roots": gone_roots(self.catalog)}
 
-    def embedder_for_run(self, choice: str, images: int):
+    def embedder_for_run(self, choice: str, images: int, say: bool = False):
         """What embeds the images of a run: the cached ONNX model without torch when the engine choice
-        allows it (exported first, in a child process, when missing and worth it), else torch."""
+        allows it (exported first, in a child process, when missing and worth it), else torch. say: tell
+        stderr before the export (a quiet quarter of a minute otherwise)."""
         from ..model.onnx_embedder import OnnxEmbedder
         from ..model.onnx_engine import EngineError, cached_model_path, onnx_available
 
@@ -258,6 +259,9 @@ class Indexer:
             path = cached_model_path(self.db / "engines", b, [l["node"] for l in self.manifest["layers"]],
                                      self.manifest["pooling"]["p"])
             if not path.exists() and export_pays_off(choice, images):
+                if say:
+                    print("kinscope: exporting the network for ONNX Runtime (once per database and model)...",
+                          file=sys.stderr, flush=True)
                 self._export_engine(required=choice == "onnx")
             if path.exists():
                 try:

@@ -16,8 +16,8 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
-from tqdm import tqdm
 
+from ..common.progress import bar as progress_bar
 from ..model.allocator import keep_buffers
 from .decode_pool import DecodePool, peak_rss_of
 
@@ -95,8 +95,7 @@ def run(
     n_cores = cores()
     configure_threads(inference_threads or n_cores)
     counts = RunCounts(engine=embedder.engine.name)
-    bar = tqdm(total=len(jobs), unit="img", disable=not progress, file=sys.stderr, dynamic_ncols=True,
-               desc="indexing")
+    bar = progress_bar(len(jobs), "indexing", unit="img", enabled=progress)
     pixels, rows, failures = [], [], []
     since_checkpoint = 0
     last_save = {"end": time.monotonic(), "seconds": 0.0}

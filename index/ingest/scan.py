@@ -43,6 +43,12 @@ def normalize_roots(paths) -> list[str]:
     return roots
 
 
+def finds_images(paths) -> bool:
+    """True once one file below the paths would be indexed (a file given by name counts): stops at the first,
+    so it walks everything only when there is none. FileNotFoundError for a path that does not exist."""
+    return next(walk(walk_roots(normalize_roots(paths)), [], []), None) is not None
+
+
 def walk_roots(roots: list[str]) -> list[str]:
     """The roots to walk so that each folder comes once: duplicates and roots inside another root
     dropped, file roots grouped by their folder."""
