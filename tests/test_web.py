@@ -240,7 +240,8 @@ def test_cautions_say_where_the_server_can_be_reached(sample_archive, monkeypatc
                        "KINSCOPE_PORT": 8470}).test_client()
     page = wide.get("/", headers={"Host": "192.0.2.7:8470", "Authorization": f"Bearer {token}"}).get_data(as_text=True)
     assert "unencrypted" in page and "this machine only" not in page
-    monkeypatch.setattr(web.serve, "serve", lambda *a, **k: None)  # say what it would serve, then return
+    # say what it would serve once warm, then return
+    monkeypatch.setattr(web.serve, "serve", lambda *a, announce, **k: announce({"engine": "onnx", "seconds": 0.25}))
     out = CliRunner().invoke(main, ["serve", "--db", str(archive.db), "--host", "0.0.0.0"], env={"KINSCOPE_TOKEN": token})
     assert out.exit_code == 0, out.output
     assert "Only this machine" not in out.output and "unencrypted" in out.output

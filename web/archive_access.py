@@ -28,6 +28,25 @@ class Holder:
         self.queries: OrderedDict[str, KeptQuery] = OrderedDict()
         self.cache_size, self.cache_bytes, self.max_pixels = cache_size, cache_bytes, max_pixels
 
+    def warm(self) -> dict:
+        """Load what the first search needs before the server says it is ready: {engine, seconds}."""
+        with self.lock:
+            return self.archive.warm()
+
+    def warm_explanations_later(self) -> threading.Thread:
+        """Load torch for explanations in a daemon thread, outside the archive's lock: searches go on
+        meanwhile (the query model is ONNX Runtime's), and the first explanation does not wait seconds
+        for torch while holding that lock. A failure here only means the first explanation loads it."""
+        def run():
+            try:
+                self.archive.warm_explanations()
+            except Exception:  # noqa: BLE001 - reported by the explanation itself, if one is asked for
+                pass
+
+        thread = threading.Thread(target=run, name="kinscope-warm-explanations", daemon=True)
+        thread.start()
+        return thread
+
     def decode(self, data: bytes) -> KeptQuery:
         """Raises index.api.DecodeError for anything that is not a usable image."""
         with self.decoding:

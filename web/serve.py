@@ -4,6 +4,7 @@ from __future__ import annotations
 import ipaddress
 import re
 import socket
+from typing import Callable
 
 from .guard import is_loopback  # noqa: F401 (the CLI and tests take it from here)
 
@@ -59,12 +60,26 @@ def free_port(host: str = "127.0.0.1") -> int:
 
 
 def serve(db: str, host: str, port: int, token: str | None, threads: int = 4,
-          allow_hosts: tuple[str, ...] = ()) -> None:
-    from waitress import serve as waitress_serve
+          allow_hosts: tuple[str, ...] = (), announce: Callable[[dict], None] | None = None,
+          warm_explanations: bool = True) -> None:
+    """Serve the page until stopped. The query model is loaded and run once and the default layer's
+    store read before `announce({engine, seconds})` is called (the socket is already listening then):
+    the first search answers as fast as later ones. Torch, which only explanations need, is loaded
+    afterwards in a background thread (warm_explanations)."""
+    from waitress import create_server
 
     from . import create_app
+    from .archive_access import Holder
 
     check_binding(host, token)
     app = create_app({"KINSCOPE_DB": db, "KINSCOPE_TOKEN": token, "KINSCOPE_LISTEN": host, "KINSCOPE_PORT": port,
                       "KINSCOPE_ALLOW_HOSTS": tuple(allow_hosts)})
-    waitress_serve(app, host=host, port=port, threads=threads, ident="kinscope", clear_untrusted_proxy_headers=True)
+    holder: Holder = app.extensions["kinscope"]
+    ready = holder.warm()
+    server = create_server(app, host=host, port=port, threads=threads, ident="kinscope",
+                           clear_untrusted_proxy_headers=True)
+    if announce is not None:
+        announce(ready)
+    if warm_explanations:
+        holder.warm_explanations_later()
+    server.run()

@@ -298,12 +298,16 @@ def serve(db, host, port, token, allow_hosts):
     except (ServeError, ArchiveError) as exc:
         _fail(exc)
     shown = f"[{host}]" if ":" in host else host
-    click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + (f"?token=..." if token else ""))
     reach = ("Only this machine can reach it. " if is_loopback(host) else
              "Other machines can reach it with the token; over plain HTTP the token and the images travel "
              "unencrypted, so use a private network or an HTTPS proxy in front (see --allow-host). ")
-    click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
-    run_server(db, host, port, token, allow_hosts=allow_hosts)
+
+    def announce(ready: dict) -> None:  # once the query model is warm and the socket listens
+        click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + ("?token=..." if token else "")
+                   + f" (query model ready in {ready['seconds']:.1f} s, {ready['engine']})")
+        click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
+
+    run_server(db, host, port, token, allow_hosts=allow_hosts, announce=announce)
 
 
 from .duplicates import duplicates_cmd, restore_cmd  # noqa: E402

@@ -262,8 +262,7 @@ class Indexer:
             if path.exists():
                 try:
                     configure_threads(cores())
-                    return OnnxEmbedder(path, self.layer_names, size=b["input_size"], mean=b["mean"], std=b["std"],
-                                        threads=cores())
+                    return OnnxEmbedder.for_manifest(path, self.manifest, threads=cores())
                 except EngineError as exc:
                     if choice == "onnx":
                         raise ArchiveError(str(exc)) from None
