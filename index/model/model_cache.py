@@ -44,3 +44,15 @@ def find_model(manifest: dict, db: Path) -> Path | None:
         if path.is_file():
             return path
     return None
+
+
+def export_dir(db: Path) -> Path:
+    """Where a new export goes: the per-user cache, or the database folder when that cannot be written."""
+    folder = user_cache_dir() / MODELS
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        if os.access(folder, os.W_OK):
+            return folder
+    except OSError:
+        pass
+    return Path(db) / CACHE_DIR

@@ -58,8 +58,14 @@ class ArchiveModels:
                 # Queries use ONNX Runtime only when its model is already cached (readers never export).
                 self._torch = Embedder(self.backbone, self.backbone.load(), layers, manifest["pooling"]["p"],
                                        engine="torch" if self.preference() == "torch" else "auto",
-                                       cache_dir=self.db / "engines", may_export=False)
+                                       cache_dir=self._model_folder(manifest), may_export=False)
         return self._torch
+
+    def _model_folder(self, manifest: dict) -> Path:
+        from .model_cache import find_model, user_cache_dir, MODELS
+
+        found = find_model(manifest, self.db)
+        return found.parent if found is not None else user_cache_dir() / MODELS
 
     @property
     def query(self):
