@@ -159,3 +159,18 @@ def test_an_explanation_asked_while_torch_is_warming_is_answered(onnx_archive):
     assert answer.get_json()["channels"]
     thread.join(timeout=120)
     assert not thread.is_alive()
+
+
+def test_a_server_whose_model_cannot_load_still_starts_and_says_why(onnx_archive, monkeypatch):
+    from index.api import ArchiveError
+    from web import create_app
+
+    db, _ = onnx_archive
+    holder = create_app({"KINSCOPE_DB": str(db)}).extensions["kinscope"]
+
+    def refuse(*args, **kwargs):
+        raise ArchiveError("the weights of efficientnet_lite0 differ from the ones this archive was built with")
+
+    monkeypatch.setattr(holder.archive, "warm", refuse)
+    ready = holder.warm()
+    assert "engine" not in ready and ready["error"].startswith("the weights of")

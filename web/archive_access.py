@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import secrets
 import threading
+import time
 from collections import OrderedDict
 
 from flask import Flask, current_app
@@ -29,9 +30,14 @@ class Holder:
         self.cache_size, self.cache_bytes, self.max_pixels = cache_size, cache_bytes, max_pixels
 
     def warm(self) -> dict:
-        """Load what the first search needs before the server says it is ready: {engine, seconds}."""
+        """Load what the first search needs before the server says it is ready: {engine, seconds}, or
+        {error, seconds} when it cannot be loaded (the page still serves; searches say why they fail)."""
+        start = time.perf_counter()
         with self.lock:
-            return self.archive.warm()
+            try:
+                return self.archive.warm()
+            except ArchiveError as exc:
+                return {"error": str(exc), "seconds": time.perf_counter() - start}
 
     def warm_explanations_later(self) -> threading.Thread:
         """Load torch for explanations in a daemon thread, outside the archive's lock: searches go on

@@ -303,8 +303,10 @@ def serve(db, host, port, token, allow_hosts):
              "unencrypted, so use a private network or an HTTPS proxy in front (see --allow-host). ")
 
     def announce(ready: dict) -> None:  # once the query model is warm and the socket listens
+        model = (f"query model ready in {ready['seconds']:.1f} s, {ready['engine']}" if "engine" in ready
+                 else f"query model not loaded: {ready['error']}")
         click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + ("?token=..." if token else "")
-                   + f" (query model ready in {ready['seconds']:.1f} s, {ready['engine']})")
+                   + f" ({model})")
         click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
 
     run_server(db, host, port, token, allow_hosts=allow_hosts, announce=announce)
