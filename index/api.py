@@ -30,7 +30,7 @@ from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone
 from .model.choice import ENGINES
 from .model.models import ArchiveModels
 from .model.pooling import PCAWhitening
-from .model.settings import available_layers, backbone_of, check_settings, layer_specs, new_manifest_apart
+from .model.settings import available_layers, check_settings, new_manifest_apart
 from .search.exemplars import Exemplars
 from .search.nearest import item_date, nearest, row_filter
 from .vectors.kinds import bytes_per_vector_of, type_name

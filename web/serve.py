@@ -63,9 +63,10 @@ def serve(db: str, host: str, port: int, token: str | None, threads: int = 4,
           allow_hosts: tuple[str, ...] = (), announce: Callable[[dict], None] | None = None,
           warm_explanations: bool = True) -> None:
     """Serve the page until stopped. The query model is loaded and run once and the default layer's
-    store read before `announce({engine, seconds})` is called (the socket is already listening then):
-    the first search answers as fast as later ones. Torch, which only explanations need, is loaded
-    afterwards in a background thread (warm_explanations)."""
+    store read before `announce({engine, seconds})` is called (the socket is already listening then),
+    so the first search waits for no model. Torch, which only explanations need, is loaded afterwards
+    in a background thread (warm_explanations); a search asked while it loads can wait a few tenths
+    of a second for Python's interpreter lock (docs/benchmarks.md)."""
     from waitress import create_server
 
     from . import create_app

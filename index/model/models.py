@@ -20,10 +20,11 @@ from .settings import backbone_of, layer_specs
 
 
 class ArchiveModels:
-    """`manifest()` gives the archive's current manifest; `configure(threads)` sets the process's
-    thread pools (index.ingest.pipeline.configure_threads, handed down by the caller)."""
+    """`manifest()` gives the archive's current manifest; `configure()` sets the process's thread pools
+    for a model (index.ingest.pipeline.configure_threads, handed down by index.api) and returns the
+    number of threads a model may use."""
 
-    def __init__(self, db: Path, manifest: Callable[[], dict], configure: Callable[[], None]):
+    def __init__(self, db: Path, manifest: Callable[[], dict], configure: Callable[[], int]):
         self.db = Path(db)
         self._manifest = manifest
         self._configure = configure
