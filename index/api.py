@@ -9,6 +9,7 @@ that room), so this file stays a table of contents.
 from __future__ import annotations
 
 import os
+import time
 from pathlib import Path
 from typing import Iterable
 
@@ -31,8 +32,9 @@ from .ingest.pipeline import configure_threads, cores
 from .map.jobs import MapJobs
 from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone
 from .model.choice import ENGINES
+from .model.models import ArchiveModels
 from .model.pooling import PCAWhitening
-from .model.settings import available_layers, backbone_of, check_settings, layer_specs, new_manifest_apart
+from .model.settings import available_layers, check_settings, new_manifest_apart
 from .search.exemplars import Exemplars
 from .search.nearest import item_date, nearest, row_filter
 from .vectors.kinds import bytes_per_vector_of, type_name
@@ -46,6 +48,12 @@ __all__ = ["Archive", "ArchiveError", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "Decod
            "sqlite_message", "type_name"]
 
 
+def _inference_threads() -> int:
+    """Thread pools for a model in this process (torch and FAISS get the cores; buffers reused)."""
+    configure_threads(cores())
+    return cores()
+
+
 class Archive(DuplicateJobs, MapJobs):
     """One database folder: catalog.sqlite, each layer's vector store, manifest.json."""
 
@@ -54,8 +62,7 @@ class Archive(DuplicateJobs, MapJobs):
         self.catalog = catalog if catalog is not None else Catalog(self.db / "catalog.sqlite")
         self.reader = Reader(self.db, manifest, lambda: mf.read(self.db))  # searches: every segment in one index
         self.indexer = Indexer(self.db, self.catalog, self.reader, lambda: self.embedder)  # the only writer
-        self._backbone: Backbone | None = None
-        self._embedder = None
+        self.models = ArchiveModels(self.db, lambda: self.manifest, _inference_threads)  # built when first used
         self._explain_baseline = None  # index.search.explain_baseline.Baseline, made by the first explanation
 
     @property
@@ -115,25 +122,32 @@ class Archive(DuplicateJobs, MapJobs):
 
     @property
     def backbone(self) -> Backbone:
-        if self._backbone is None:
-            self._backbone = backbone_of(self.manifest["backbone"])
-        return self._backbone
+        return self.models.backbone
 
     @property
     def embedder(self):
-        if self._embedder is None:
-            from .model.layers import Layer
-            from .model.torch_embedder import Embedder
+        """The torch Embedder (explanations; queries when no ONNX model is cached): loads torch."""
+        return self.models.torch
 
-            configure_threads(cores())  # torch and FAISS get the cores; large buffers are reused
-            model = self.backbone.load()
-            layers = [Layer(**spec) for spec in layer_specs(self.manifest)]
-            # Queries use ONNX Runtime only when its model is already cached (readers never write).
-            preference = self.manifest.get("runtime", {}).get("engine", "auto")
-            self._embedder = Embedder(self.backbone, model, layers, self.manifest["pooling"]["p"],
-                                      engine="torch" if preference == "torch" else "auto",
-                                      cache_dir=self.db / "engines", may_export=False)
-        return self._embedder
+    @property
+    def query_embedder(self):
+        """What describes queries: the cached ONNX model without torch, else the torch Embedder."""
+        return self.models.query
+
+    def warm(self, layer: str | None = None) -> dict:
+        """Load what a first search needs (the query model, one run through it, the layer's store) so
+        that it answers as fast as later ones; {engine, seconds}."""
+        start = time.perf_counter()
+        engine = self.models.warm_query()
+        self.store(self._layer(layer)["name"])
+        return {"engine": engine, "seconds": time.perf_counter() - start}
+
+    def warm_explanations(self) -> float:
+        """Load what a first explanation needs (torch, the backbone, one pass through the default and
+        the pair layer); seconds taken. Safe in a thread of its own while searches go on."""
+        from .search.explain import explained_nodes
+
+        return self.models.warm_maps(explained_nodes(self.backbone, self._layer(None)))
 
     def store(self, layer: str) -> VectorStore:
         """The layer's vectors as one in-memory FAISS index, as of the last committed checkpoint (for
@@ -182,7 +196,7 @@ class Archive(DuplicateJobs, MapJobs):
             except RuntimeError:  # committed in the catalog but not in this store: `kinscope index` again
                 raise ArchiveError(f"item {int(query)} has no {name} descriptor yet; "
                                    "run kinscope index again") from None
-        vector = self.embedder.embed_images([self.query_image(query, box)])[name]
+        vector = self.query_embedder.embed_images([self.query_image(query, box)])[name]
         w = self.whitening(name)
         return (w.transform(vector) if w else vector)[0]
 

@@ -19,6 +19,24 @@ def _to_rgb(a: np.ndarray) -> Image.Image:
     return Image.fromarray(a).convert("RGB")
 
 
+@pytest.fixture(scope="session", autouse=True)
+def model_cache(tmp_path_factory):
+    """A per-user model cache of the test session's own (index.model.model_cache): nothing read from or
+    written to the real one. Child processes inherit it through the environment."""
+    import os
+
+    from index.model.model_cache import ENV
+
+    folder = tmp_path_factory.mktemp("user-cache")
+    before = os.environ.get(ENV)
+    os.environ[ENV] = str(folder)
+    yield folder
+    if before is None:
+        os.environ.pop(ENV, None)
+    else:
+        os.environ[ENV] = before
+
+
 @pytest.fixture(scope="session")
 def sample_images() -> dict[str, Image.Image]:
     """Open photographs and scans shipped by scikit-image and scikit-learn, as RGB images."""

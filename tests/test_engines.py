@@ -142,7 +142,8 @@ def test_pooling_equals_the_reference_gem_and_peaks(p):
 
 def test_an_indexer_on_the_onnx_model_never_loads_torch(tmp_path, sample_images):
     """Creating the archive (the model is loaded to resolve its layers) and the export run in child
-    processes; the indexing process itself, on its first run, holds no torch (about 0.7 GB)."""
+    processes when the per-user cache lacks them; the indexing process itself, on its first run,
+    holds no torch (about 0.7 GB)."""
     import json
     import subprocess
     import sys
@@ -165,7 +166,11 @@ def test_an_indexer_on_the_onnx_model_never_loads_torch(tmp_path, sample_images)
     assert out.returncode == 0, out.stderr
     seen = json.loads(out.stdout.strip().splitlines()[-1])
     assert seen == {"torch": False, "engine": "onnx", "embedded": 3}
-    assert list((tmp_path / "db" / "engines").glob("*.onnx"))  # exported once, by the child
+    assert not (tmp_path / "db" / "engines").exists()  # exported once per model, into the per-user cache
+    from index.model.model_cache import find_model, user_cache_dir
+
+    assert find_model(json.loads((tmp_path / "db" / "manifest.json").read_text()), tmp_path / "db").parent == \
+        user_cache_dir() / "models"
     # The torch reference finds each stored ONNX descriptor with a score of 1.
     archive = Archive.open(tmp_path / "db")
     archive.manifest["runtime"]["engine"] = "torch"

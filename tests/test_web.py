@@ -242,6 +242,8 @@ def test_cautions_say_where_the_server_can_be_reached(sample_archive, monkeypatc
     assert "unencrypted" in page and "this machine only" not in page
     bound = type("Bound", (), {"run": lambda self: None, "close": lambda self: None})
     monkeypatch.setattr(web.serve, "bind", lambda *a, **k: bound())  # say what it would serve, then return
+    monkeypatch.setattr(web.serve, "warm", lambda server: {"engine": "onnx", "seconds": 0.25})
+    monkeypatch.setattr(web.serve, "warm_explanations_later", lambda server: None)
     out = CliRunner().invoke(main, ["serve", "--db", str(archive.db), "--host", "0.0.0.0"], env={"KINSCOPE_TOKEN": token})
     assert out.exit_code == 0, out.output
     assert "Only this machine" not in out.output and "unencrypted" in out.output

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import secrets
 import threading
+import time
 from collections import OrderedDict
 
 from flask import Flask, current_app
@@ -27,6 +28,30 @@ class Holder:
         self.decoding = threading.Lock()
         self.queries: OrderedDict[str, KeptQuery] = OrderedDict()
         self.cache_size, self.cache_bytes, self.max_pixels = cache_size, cache_bytes, max_pixels
+
+    def warm(self) -> dict:
+        """Load what the first search needs before the server says it is ready: {engine, seconds}, or
+        {error, seconds} when it cannot be loaded (the page still serves; searches say why they fail)."""
+        start = time.perf_counter()
+        with self.lock:
+            try:
+                return self.archive.warm()
+            except ArchiveError as exc:
+                return {"error": str(exc), "seconds": time.perf_counter() - start}
+
+    def warm_explanations_later(self) -> threading.Thread:
+        """Load torch for explanations in a daemon thread, outside the archive's lock: searches go on
+        meanwhile (the query model is ONNX Runtime's), and the first explanation does not wait seconds
+        for torch while holding that lock. A failure here only means the first explanation loads it."""
+        def run():
+            try:
+                self.archive.warm_explanations()
+            except Exception:  # noqa: BLE001 - reported by the explanation itself, if one is asked for
+                pass
+
+        thread = threading.Thread(target=run, name="kinscope-warm-explanations", daemon=True)
+        thread.start()
+        return thread
 
     def decode(self, data: bytes) -> KeptQuery:
         """Raises index.api.DecodeError for anything that is not a usable image."""

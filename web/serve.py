@@ -4,6 +4,7 @@ from __future__ import annotations
 import ipaddress
 import re
 import socket
+from typing import Callable
 
 from .guard import is_loopback  # noqa: F401 (the CLI and tests take it from here)
 
@@ -100,6 +101,7 @@ def bind(db: str, host: str, port: int, token: str | None, threads: int = THREAD
     from waitress.server import create_server
 
     from . import create_app
+    from .archive_access import Holder
 
     check_binding(host, token)
     app = create_app({"KINSCOPE_DB": db, "KINSCOPE_TOKEN": token, "KINSCOPE_LISTEN": host, "KINSCOPE_PORT": port,
@@ -107,8 +109,8 @@ def bind(db: str, host: str, port: int, token: str | None, threads: int = THREAD
     quiet_routine_logs()
     limit_malloc_arenas()
     try:
-        return create_server(app, host=host, port=port, threads=threads, ident="kinscope",
-                             clear_untrusted_proxy_headers=True)
+        server = create_server(app, host=host, port=port, threads=threads, ident="kinscope",
+                               clear_untrusted_proxy_headers=True)
     except OSError as exc:
         if exc.errno == errno.EADDRINUSE:
             raise PortBusy(f"port {port} on {host} is busy (another program, or a kinscope already serving, "
@@ -117,8 +119,35 @@ def bind(db: str, host: str, port: int, token: str | None, threads: int = THREAD
             raise PortBusy(f"port {port} on {host} needs privileges this user lacks; pick another with --port N "
                            "(1024 or above)") from None
         raise ServeError(f"cannot listen on {host}:{port}: {exc.strerror or exc}") from None
+    holder: Holder = app.extensions["kinscope"]
+    server.kinscope = holder  # for warm() and warm_explanations_later()
+    return server
+
+
+def warm(server) -> dict:
+    """Load and run the query model once, and read the default layer's store, so that the first search
+    waits for no model: {engine, seconds}, or {error, seconds} (the page still serves; searches say why)."""
+    return server.kinscope.warm()
+
+
+def warm_explanations_later(server) -> None:
+    """Torch, which only explanations need, loaded in a background thread; a search asked while it loads
+    can wait a few tenths of a second for Python's interpreter lock (docs/benchmarks.md)."""
+    server.kinscope.warm_explanations_later()
 
 
 def serve(db: str, host: str, port: int, token: str | None, threads: int = THREADS,
-          allow_hosts: tuple[str, ...] = ()) -> None:
-    bind(db, host, port, token, threads, allow_hosts).run()
+          allow_hosts: tuple[str, ...] = (), announce: Callable[[dict], None] | None = None,
+          warm_explanations: bool = True) -> None:
+    """Serve the page until stopped: bind (PortBusy first), warm the query model, `announce(ready)`, then
+    load torch for explanations in the background while serving."""
+    server = bind(db, host, port, token, threads, allow_hosts)
+    ready = warm(server)
+    if announce is not None:
+        announce(ready)
+    if warm_explanations:
+        warm_explanations_later(server)
+    try:
+        server.run()
+    finally:
+        server.close()

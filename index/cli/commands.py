@@ -324,7 +324,8 @@ def serve(db, host, port, token, allow_hosts):
     results matched, review duplicates and browse the map. It never changes, moves or deletes your files.
     It runs until Ctrl-C; when the port is busy it says so (pick another with --port)."""
     try:
-        from web.serve import ServeError, answered_names, bind, check_allow_host, check_binding, is_loopback
+        from web.serve import (ServeError, answered_names, bind, check_allow_host, check_binding, is_loopback,
+                               warm, warm_explanations_later)
     except ImportError:
         _fail("the web page needs Flask and waitress: pip install -e .")
     try:
@@ -336,11 +337,16 @@ def serve(db, host, port, token, allow_hosts):
     except (ServeError, ArchiveError) as exc:
         _fail(exc)
     shown = f"[{host}]" if ":" in host else host
-    click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + (f"?token=..." if token else ""))
     reach = ("Only this machine can reach it. " if is_loopback(host) else
              "Other machines can reach it with the token; over plain HTTP the token and the images travel "
              "unencrypted, so use a private network or an HTTPS proxy in front (see --allow-host). ")
+    ready = warm(server)  # the query model loaded and run once: the first search waits for no model
+    model = (f"query model ready in {ready['seconds']:.1f} s, {ready['engine']}" if "engine" in ready
+             else f"query model not loaded: {ready['error']}")
+    click.echo(f"kinscope is serving {db} at http://{shown}:{port}/" + ("?token=..." if token else "")
+               + f" ({model})")
     click.echo(f"{reach}It answers to {', '.join(answered_names(host, port, allow_hosts))}. Stop with Ctrl-C.")
+    warm_explanations_later(server)
     try:
         server.run()  # until Ctrl-C (waitress handles it and stops its threads)
     finally:

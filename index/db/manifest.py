@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import json
 import platform
+import sys
 import re
 from pathlib import Path
 
@@ -31,19 +32,30 @@ def layer_entry(manifest: dict, name: str | None) -> dict:
 
 
 def versions() -> dict:
+    """The versions a new archive records; torch's are read from the package metadata when torch is
+    not loaded (a new archive made from the per-user model cache never imports it)."""
     import faiss
-    import torch
-    import torchvision
 
     from .. import __version__
 
     return {
         "kinscope": __version__,
         "python": platform.python_version(),
-        "torch": torch.__version__,
-        "torchvision": torchvision.__version__,
+        "torch": _package_version("torch"),
+        "torchvision": _package_version("torchvision"),
         "faiss": faiss.__version__,
     }
+
+
+def _package_version(name: str) -> str:
+    if name in sys.modules:
+        return sys.modules[name].__version__
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version(name)
+    except PackageNotFoundError:
+        return "not installed"
 
 
 def read(db: Path) -> dict | None:

@@ -251,23 +251,22 @@ class Indexer:
         """What embeds the images of a run: the cached ONNX model without torch when the engine choice
         allows it (exported first, in a child process, when missing and worth it), else torch. say: tell
         stderr before the export (a quiet quarter of a minute otherwise)."""
+        from ..model.model_cache import find_model
         from ..model.onnx_embedder import OnnxEmbedder
-        from ..model.onnx_engine import EngineError, cached_model_path, onnx_available
+        from ..model.onnx_engine import EngineError, onnx_available
 
         if choice != "torch" and onnx_available():
-            b = self.manifest["backbone"]
-            path = cached_model_path(self.db / "engines", b, [l["node"] for l in self.manifest["layers"]],
-                                     self.manifest["pooling"]["p"])
-            if not path.exists() and export_pays_off(choice, images):
+            path = find_model(self.manifest, self.db)
+            if path is None and export_pays_off(choice, images):
                 if say:
-                    print("kinscope: exporting the network for ONNX Runtime (once per database and model)...",
+                    print("kinscope: exporting the network for ONNX Runtime (once per model)...",
                           file=sys.stderr, flush=True)
                 self._export_engine(required=choice == "onnx")
-            if path.exists():
+                path = find_model(self.manifest, self.db)
+            if path is not None:
                 try:
                     configure_threads(cores())
-                    return OnnxEmbedder(path, self.layer_names, size=b["input_size"], mean=b["mean"], std=b["std"],
-                                        threads=cores())
+                    return OnnxEmbedder.for_manifest(path, self.manifest, threads=cores())
                 except EngineError as exc:
                     if choice == "onnx":
                         raise ArchiveError(str(exc)) from None
@@ -282,10 +281,11 @@ class Indexer:
 
     def _export_engine(self, *, required: bool) -> None:
         """Export the ONNX model in a child process (`python -m index.model.child --export`): torch is
-        loaded there, once per database, and never in the indexer."""
+        loaded there, once per model (the per-user cache, index.model.model_cache), never in the indexer."""
+        from ..model.model_cache import export_dir
         from ..model.settings import export_apart
 
-        message = export_apart(self.manifest, self.db / "engines")
+        message = export_apart(self.manifest, export_dir(self.db))
         if message is not None:
             if required:
                 raise ArchiveError(f"cannot export the model to ONNX: {message}")

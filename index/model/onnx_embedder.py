@@ -1,10 +1,11 @@
 """Descriptors from the cached ONNX model alone: what the indexer uses when the model is exported.
 
-Same interface as index.model.torch_embedder.Embedder for indexing (size, engine, embed_pixels, embed_images), built
-from the archive's manifest and the cached model file, without importing torch: an indexing process
-then holds ONNX Runtime, FAISS and the catalog, not torch and torchvision (about 0.7 GB resident on
-their own). Exporting the model needs torch; index.model.child does it, in a child process when called
-from Archive.add.
+Same interface as index.model.torch_embedder.Embedder for indexing and queries (size, engine,
+embed_pixels, embed_images), built from the archive's manifest and the cached model file, without
+importing torch: an indexing process then holds ONNX Runtime, FAISS and the catalog, not torch and
+torchvision (about 0.7 GB resident on their own), and a search by an image file starts in a fraction
+of a second instead of the seconds torch takes to load. Exporting the model needs torch;
+index.model.child does it, in a child process when called from Archive.add.
 """
 from __future__ import annotations
 
@@ -25,6 +26,13 @@ class OnnxEmbedder:
         self._mean = np.asarray(mean, np.float32)
         self._std = np.asarray(std, np.float32)
 
+    @classmethod
+    def for_manifest(cls, path: Path, manifest: dict, threads: int = 1) -> "OnnxEmbedder":
+        """The embedder of an archive's layers, on its cached model file `path`."""
+        b = manifest["backbone"]
+        return cls(path, [l["name"] for l in manifest["layers"]], size=b["input_size"], mean=b["mean"],
+                   std=b["std"], threads=threads)
+
     def inputs(self, pixels: np.ndarray) -> np.ndarray:
         """(N, S, S, 3) uint8 from index.images.preprocess.fit_square -> (N, 3, S, S) float32."""
         return to_input(pixels, self._mean, self._std)
@@ -34,5 +42,6 @@ class OnnxEmbedder:
         return self.engine.embed(self.inputs(pixels))
 
     def embed_images(self, images: list[Image.Image]) -> dict[str, np.ndarray]:
+        """Descriptors of whole images, prepared as Embedder.preprocess prepares them (fit_square)."""
         pixels = np.stack([fit_square(im, self.size) for im in images])
         return self.embed_pixels(pixels)[0]

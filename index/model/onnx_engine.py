@@ -3,8 +3,9 @@
 The exported graph (index.model.torch_engine.export_onnx, which needs torch) takes the normalised input batch
 and returns, for each chosen layer, the L2-normalised GeM descriptor and each channel's peak value and
 position, so only (N, C) arrays leave ONNX Runtime and the pooling runs on its threads. The file is
-cached in the database folder (`engines/`), named by a key of backbone, weights hash, input size,
-layer nodes and GeM exponent, and carries the layers' grids in its metadata. This module imports no
+cached once per model in the per-user cache (index.model.model_cache; earlier versions: the database
+folder's `engines/`), named by a key of exporter format, backbone, weights hash, input size, layer
+nodes and GeM exponent, and carries the layers' grids in its metadata. This module imports no
 torch: an indexer that finds the model cached never loads it (index.model.onnx_embedder).
 """
 from __future__ import annotations
@@ -24,7 +25,7 @@ EXPORT_FORMAT = 3  # 2: pooled outputs (descriptor, peak, position); 3: peaks fr
 # padding makes many channels fire there in every image (measured in docs/explain.md), so border
 # peaks show the frame, not content. The descriptor still pools the whole map.
 PEAK_RING = 1
-CACHE_DIR = "engines"
+CACHE_DIR = "engines"  # in a database folder: where earlier versions exported (still read)
 META_KEY = "kinscope"  # ONNX metadata entry: {"layers": [...], "grids": {layer: [h, w]}, "p": ...}
 
 

@@ -78,26 +78,42 @@ def available_layers(backbone: str, weights: str | None = None) -> dict:
 
 
 def new_manifest(db: Path, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
-    """A new archive's manifest (the folder is created); loads the model to resolve the layers."""
+    """A new archive's manifest (the folder is created); loads the model to resolve the layers, and
+    records what that gave in the per-user cache (index.model.settings_cache)."""
     from .layers import resolve_layers
+    from .settings_cache import remember
 
+    p = _gem_p(gem_p)
     try:
         backbone = get_backbone(backbone_name, weights)
         model = backbone.load()
         layers = resolve_layers(backbone, model, list(layer_names or backbone.default_layers))
     except BackboneError as exc:
         raise ArchiveError(str(exc)) from None
+    resolved = {"backbone": backbone.manifest(), "layers": [l.manifest() for l in layers],
+                "default_search_layer": backbone.default_search_layer}
+    remember(backbone_name, weights, layer_names, resolved)
+    return _manifest(db, resolved, p, whiten)
+
+
+def _gem_p(gem_p) -> float:
     p = DEFAULT_GEM_P if gem_p is None else float(gem_p)
     if p <= 0:
         raise ArchiveError(f"the GeM exponent must be positive, got {p}")
+    return p
+
+
+def _manifest(db: Path, resolved: dict, p: float, whiten) -> dict:
+    """The manifest of resolved settings: {backbone (its manifest), layers (Layer.manifest() each),
+    default_search_layer}."""
     db.mkdir(parents=True, exist_ok=True)
-    names = [l.name for l in layers]
-    default = backbone.default_search_layer if backbone.default_search_layer in names else names[0]
+    names = [l["name"] for l in resolved["layers"]]
+    default = resolved["default_search_layer"] if resolved["default_search_layer"] in names else names[0]
     return {
         "format": mf.FORMAT,
         "created_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-        "backbone": backbone.manifest(),
-        "layers": [{**l.manifest(), "dim": l.channels, "file": mf.store_file(l.name)} for l in layers],
+        "backbone": resolved["backbone"],
+        "layers": [{**l, "dim": l["channels"], "file": mf.store_file(l["name"])} for l in resolved["layers"]],
         "default_layer": default,
         "pooling": {"method": "GeM", "p": p, "normalisation": "L2"},
         "whitening": {"enabled": bool(whiten), "min_images": DEFAULT_WHITEN_MIN_IMAGES, "learned": {}},
@@ -108,7 +124,14 @@ def new_manifest(db: Path, backbone_name, layer_names, gem_p, whiten, weights) -
 
 
 def new_manifest_apart(db: Path, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
-    """new_manifest, in a child process unless this one already holds torch (tests, the torch engine)."""
+    """new_manifest without loading torch here: from the settings recorded in the per-user cache when
+    the same ones were resolved before, else in this process if it already holds torch (tests, the
+    torch engine), else in a child process."""
+    from .settings_cache import recall
+
+    resolved = recall(backbone_name, weights, layer_names)
+    if resolved is not None:
+        return _manifest(db, resolved, _gem_p(gem_p), whiten)
     if "torch" in sys.modules:
         return new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights)
     asked = {"db": str(db), "backbone": backbone_name, "layers": layer_names, "gem_p": gem_p,

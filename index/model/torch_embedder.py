@@ -1,6 +1,7 @@
 """Backbone forward pass with layer taps: images -> feature maps -> pooled descriptors."""
 from __future__ import annotations
 
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -33,6 +34,7 @@ class Embedder:
         self.model = model
         self.extractor = create_feature_extractor(model, return_nodes={l.node: l.name for l in layers}).eval()
         self._extra: dict[tuple[str, ...], torch.nn.Module] = {}  # explanation taps -> their extractor
+        self._tracing = threading.Lock()  # torch.fx traces the shared model: one extractor made at a time
         self.reference = TorchEngine(self.extractor, [l.name for l in layers], p=p)
         self.cache_dir = Path(cache_dir) if cache_dir is not None else None
         self._mean = np.asarray(backbone.mean, np.float32)
@@ -102,8 +104,9 @@ class Embedder:
     def maps_at(self, images: list[Image.Image], nodes: tuple[str, ...]) -> dict[str, np.ndarray]:
         """Images -> graph node -> (N, C, H, W) float32 feature maps (torch), for any nodes of the
         backbone (explanations read a finer layer than the archive may keep); one forward pass."""
-        if nodes not in self._extra:
-            self._extra[nodes] = create_feature_extractor(self.model, return_nodes={n: n for n in nodes}).eval()
+        with self._tracing:  # the server warms this in a thread while an explanation may ask for it
+            if nodes not in self._extra:
+                self._extra[nodes] = create_feature_extractor(self.model, return_nodes={n: n for n in nodes}).eval()
         batch = np.stack([self.preprocess(im) for im in images])
         with torch.inference_mode():
             out = self._extra[nodes](torch.from_numpy(batch))

@@ -9,6 +9,7 @@ the indexer has the model exported in a child process (index.model.child), never
 from __future__ import annotations
 
 import io
+import os
 import json
 import warnings
 from pathlib import Path
@@ -137,7 +138,7 @@ def export_onnx(extractor: torch.nn.Module, names: list[str], input_size: int, p
                                                               "format": EXPORT_FORMAT})})
     data = model.SerializeToString()
     Path(path).parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(path).with_suffix(".unchecked")
+    tmp = Path(path).with_suffix(f".{os.getpid()}.unchecked")  # the cache is shared: exports may run at once
     tmp.write_bytes(data)
     try:
         difference, peak_difference = max_difference(TorchEngine(extractor, names, p=p), OnnxEngine(tmp, names),

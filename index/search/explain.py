@@ -80,6 +80,11 @@ def pairs_with_shares(regions: dict, grid_q, grid_d, query_map, match_map, score
     return out
 
 
+def explained_nodes(backbone, entry: dict) -> tuple[str, ...]:
+    """The graph nodes an explanation of layer `entry` runs: its own, then the pair layer's (may be one)."""
+    return tuple(dict.fromkeys((entry["node"], backbone.presets.get(PAIR_PRESET, entry["node"]))))
+
+
 def explain(archive, query, match: int, *, layer: str | None = None, box=None, mode: str = "centred") -> dict:
     """Archive.explain (see there); `archive` is an index.api.Archive."""
     if mode not in MODES:
@@ -89,8 +94,8 @@ def explain(archive, query, match: int, *, layer: str | None = None, box=None, m
     if archive.whitening(name):
         raise ExplainError(f"layer {name} is PCA-whitened; its scores do not split over positions")
     row = archive.item(int(match))
-    pair_node = archive.backbone.presets.get(PAIR_PRESET, entry["node"])
-    nodes = tuple(dict.fromkeys((entry["node"], pair_node)))
+    nodes = explained_nodes(archive.backbone, entry)
+    pair_node = nodes[-1]
     query_image = archive.query_image(query, box)
     # One forward pass: the query, its mirror image (for the pairs only) and the match.
     maps = archive.embedder.maps_at([query_image, ImageOps.mirror(query_image), archive.query_image(int(match))], nodes)
