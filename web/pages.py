@@ -5,7 +5,7 @@ from datetime import datetime, timezone
 
 from flask import Blueprint, render_template
 
-from index.api import ArchiveError
+from index.api import ArchiveError, size_text
 
 from .archive_access import holder
 
@@ -18,6 +18,12 @@ def timestamp(value) -> str:
     if value is None:
         return "unknown"
     return datetime.fromtimestamp(float(value), timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+
+
+@bp.app_template_filter("size")
+def size(value) -> str:
+    """A file size as the whole page writes it (static/common.js formatSize agrees): '39.1 kB'."""
+    return size_text(value)
 
 
 def error_page(message: str, status: int):
