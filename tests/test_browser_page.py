@@ -163,16 +163,17 @@ def test_sizes_read_the_same_on_the_card_and_the_item_page(page):
                        sizes) == [size_text(s) for s in sizes]
 
 
-BREAKS = """e => { // the characters before each line break inside the element's text
-    const out = []; let last = null, before = '';
+BREAKS = """e => { // [character before, its offset in the text] at each line break inside the element
+    const out = []; let last = null, before = null, at = -1;
     const walk = document.createTreeWalker(e, NodeFilter.SHOW_TEXT);
     for (let n = walk.nextNode(); n; n = walk.nextNode()) {
         for (let i = 0; i < n.length; i++) {
             const r = document.createRange(); r.setStart(n, i); r.setEnd(n, i + 1);
             const rect = r.getClientRects()[0];
             if (!rect) continue;
+            at += 1;
             if (last !== null && rect.top > last + 2) out.push(before);
-            last = rect.top; before = n.data[i];
+            last = rect.top; before = [n.data[i], at];
         }
     }
     return out; }"""
@@ -186,9 +187,23 @@ def test_names_wrap_only_after_a_slash_underscore_or_hyphen(page):
     wrapped = 0
     for i in range(names.count()):
         before = names.nth(i).evaluate(BREAKS)
-        assert all(c in "/_-" for c in before), (names.nth(i).inner_text(), before)
+        assert all(c in "/_-" for c, _ in before), (names.nth(i).inner_text(), before)
         wrapped += bool(before)
     assert wrapped > 0  # the demo's long swatch names do wrap, so the check above saw some breaks
+    # The item page in a narrow window: path, folder and name cells wrap at the same places only.
+    pg.set_viewport_size({"width": 700, "height": 800})
+    pg.locator("#results li.result .result-actions a").nth(1).click()
+    pg.wait_for_selector(".meta-table")
+    cells = pg.locator(".meta-table td.path, .item-figure figcaption, .crumbs")
+    seen = []
+    for i in range(cells.count()):
+        before = cells.nth(i).evaluate(BREAKS)
+        assert all(c in "/_- " for c, _ in before), (cells.nth(i).inner_text(), before)
+        seen += before
+    assert seen  # the full paths are long enough to wrap at 700 px
+    sha = pg.locator(".meta-table td.hash")
+    breaks = sha.evaluate(BREAKS)
+    assert len(sha.inner_text()) == 64 and breaks and all(at % 16 == 15 for _, at in breaks), breaks  # between groups
 
 
 def test_cautions_fold_for_the_session_and_two_rows_of_results_show(page):
