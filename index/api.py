@@ -17,6 +17,7 @@ import numpy as np
 from PIL import Image
 
 from .common.errors import ArchiveError
+from .common.units import size_text  # noqa: F401 (web/ and the CLI take it from here)
 from .db import manifest as mf
 from .db.catalog import Catalog
 from .db.folder import CatalogProblem, open_catalog, sqlite_message
@@ -30,7 +31,7 @@ from .ingest.cluster import connect as connect_cluster
 from .ingest.indexer import Indexer
 from .ingest.pipeline import configure_threads, cores
 from .map.jobs import MapJobs
-from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone
+from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone, plain_name
 from .model.choice import ENGINES
 from .model.models import ArchiveModels
 from .model.pooling import PCAWhitening
@@ -261,9 +262,10 @@ class Archive(DuplicateJobs, MapJobs):
             raise ArchiveError(f"no indexed item with id {int(item_id)}")
         return rows[int(item_id)]
 
-    def items(self, *, offset: int = 0, limit: int = 60, folder: str | None = None) -> dict:
-        """A page of indexed items in catalog order, optionally below one folder."""
-        return self.catalog.page(offset=offset, limit=limit, folder=folder)
+    def items(self, *, offset: int = 0, limit: int = 60, folder: str | None = None, name: str | None = None) -> dict:
+        """A page of indexed items in catalog order, optionally below one folder, and with `name` in the file
+        name (any case; a whole number also finds the item of that id)."""
+        return self.catalog.page(offset=offset, limit=limit, folder=folder, name=name)
 
     def folders(self) -> list[dict]:
         return self.catalog.folders()
@@ -345,7 +347,8 @@ class Archive(DuplicateJobs, MapJobs):
                            "bytes_per_vector": bytes_per_vector_of(index)})
         return {
             "db": str(self.db),
-            "backbone": {k: m["backbone"][k] for k in ("name", "family", "weights_source", "weights_sha256")},
+            "backbone": {**{k: m["backbone"][k] for k in ("name", "family", "weights_source", "weights_sha256")},
+                         "plain": plain_name(m["backbone"]["name"], m["backbone"]["weights_source"])},
             "pooling": m["pooling"],
             "whitening": {"enabled": m["whitening"]["enabled"], "learned": sorted(m["whitening"]["learned"])},
             "default_layer": m["default_layer"],

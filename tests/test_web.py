@@ -249,3 +249,15 @@ def test_cautions_say_where_the_server_can_be_reached(sample_archive, monkeypatc
     assert "Only this machine" not in out.output and "unencrypted" in out.output
     out = CliRunner().invoke(main, ["serve", "--db", str(archive.db)], env={"KINSCOPE_TOKEN": ""})
     assert "Only this machine can reach it" in out.output
+
+
+def test_items_filter_by_part_of_the_name_or_the_id(client):
+    c, _ = client
+    every = c.get("/api/items?limit=500").get_json()["items"]
+    coffee = c.get("/api/items?name=OFFE").get_json()  # any case, any part of the name
+    assert [i["name"] for i in coffee["items"]] == ["coffee.png"] and coffee["total"] == 1
+    assert c.get("/api/items?name=%25").get_json()["total"] == sum("%" in i["name"] for i in every)  # literal %
+    assert c.get("/api/items?name=_").get_json()["total"] == sum("_" in i["name"] for i in every)  # literal _
+    some = every[4]
+    assert some["id"] in [i["id"] for i in c.get(f"/api/items?name={some['id']}").get_json()["items"]]
+    assert c.get("/api/items?name=" + "x" * 256).status_code == 400

@@ -96,7 +96,8 @@ def items():
     h = holder()
     offset, limit = params.integer("offset", 0), params.integer("limit", 60, 1, 500)
     with h.lock:
-        page = h.archive.items(offset=offset, limit=limit, folder=params.text("folder", 4096))
+        page = h.archive.items(offset=offset, limit=limit, folder=params.text("folder", 4096),
+                               name=params.text("name", 255))
     return jsonify(total=page["total"], offset=page["offset"], items=[_summary(r) for r in page["items"]])
 
 

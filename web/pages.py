@@ -1,11 +1,13 @@
 """HTML pages: the search page and an item page. Their behaviour is in static/app.js."""
 from __future__ import annotations
 
+import re
 from datetime import datetime, timezone
 
 from flask import Blueprint, render_template
+from markupsafe import Markup, escape
 
-from index.api import ArchiveError
+from index.api import ArchiveError, size_text
 
 from .archive_access import holder
 
@@ -18,6 +20,26 @@ def timestamp(value) -> str:
     if value is None:
         return "unknown"
     return datetime.fromtimestamp(float(value), timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+
+
+@bp.app_template_filter("size")
+def size(value) -> str:
+    """A file size as the whole page writes it (static/common.js formatSize agrees): '39.1 kB'."""
+    return size_text(value)
+
+
+@bp.app_template_filter("breakable")
+def breakable(value) -> Markup:
+    """A name or path that may wrap only after "/", "_" or "-" (static/common.js breakable does the same)."""
+    text = str(escape(value if value is not None else ""))
+    return Markup(re.sub(r"([/_-])", r"\1<wbr>", text))
+
+
+@bp.app_template_filter("hex_groups")
+def hex_groups(value) -> Markup:
+    """A long hash that may wrap between groups of 16 digits only (copying it still gives one string)."""
+    text = str(escape(value or ""))
+    return Markup("<wbr>".join(text[i:i + 16] for i in range(0, len(text), 16)))
 
 
 def error_page(message: str, status: int):

@@ -187,12 +187,16 @@ class Catalog:
                 out[row["id"]] = row
         return out
 
-    def page(self, *, offset: int = 0, limit: int = 60, folder: str | None = None) -> dict:
-        """Indexed items in id order, `limit` at a time, optionally below one folder."""
+    def page(self, *, offset: int = 0, limit: int = 60, folder: str | None = None, name: str | None = None) -> dict:
+        """Indexed items in id order, `limit` at a time, optionally below one folder and with `name` in the file
+        name (any case) or, when it is a whole number, as the item's id."""
         where, args = "status = 'ok'", []
         if folder:
             clause, args = under_clause("folder", folder.rstrip(os.sep))
             where += f" and {clause}"
+        if name:
+            clause, more = name_clause(name)
+            where, args = f"{where} and {clause}", [*args, *more]
         total = self.db.execute(f"select count(*) from images where {where}", args).fetchone()[0]
         rows = list(self.db.query(f"select * from images where {where} order by id limit ? offset ?",
                                   [*args, int(limit), int(offset)]))
@@ -335,6 +339,15 @@ def under_clause(column: str, root: str) -> tuple[str, list]:
     """SQL for "column is root or lies below it" (no LIKE: paths may hold % and _)."""
     start = prefix(root)
     return f"({column} = ? or substr({column}, 1, ?) = ?)", [root, len(start), start]
+
+
+def name_clause(text: str) -> tuple[str, list]:
+    """SQL for "the file name contains text" (LIKE, its wildcards % and _ escaped: a name may hold them), or
+    "the id is text" when text is a whole number."""
+    pattern = "%" + text.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_") + "%"
+    if text.isascii() and text.isdigit() and len(text) < 19:
+        return "(name like ? escape '\\' or id = ?)", [pattern, int(text)]
+    return "name like ? escape '\\'", [pattern]
 
 
 def _uri(path: Path, mode: str) -> str:

@@ -5,9 +5,10 @@ from __future__ import annotations
 import re
 from html import escape
 
+from ..common import units
+
 BREAKS = "/_-"  # a name or folder may break after one of these (or at a space), never inside a word or number
 LONGEST_RUN = 22  # characters without a break point that still fit one line of a file's card
-SIZE_UNITS = ("kB", "MB", "GB", "TB")  # decimal SI prefixes: 1 kB = 1000 bytes
 
 
 def count(n: int, singular: str, plural: str | None = None) -> str:
@@ -16,15 +17,8 @@ def count(n: int, singular: str, plural: str | None = None) -> str:
 
 
 def size_text(n: int | None) -> str:
-    """A file size in decimal SI units with one decimal: '812 bytes', '39.1 kB', '2.4 MB'."""
-    if n is None:
-        return "size unknown"
-    if n < 1000:
-        return count(int(n), "byte")
-    value, unit = n / 1000, 0
-    while round(value, 1) >= 1000 and unit < len(SIZE_UNITS) - 1:  # 999 960 bytes is '1.0 MB', not '1000.0 kB'
-        value, unit = value / 1000, unit + 1
-    return f"{value:.1f} {SIZE_UNITS[unit]}"
+    """A file size as the page writes it (index.common.units: '812 bytes', '39.1 kB', '2.4 MB')."""
+    return "size unknown" if n is None else units.size_text(n)
 
 
 def breakable(text: str, limit: int = LONGEST_RUN) -> str:

@@ -1,10 +1,11 @@
 // The search page: give a query (file, drop, paste, archive item), choose a layer, filter, draw a
 // region, page through results, and open "why it matched" for any of them. Talks to /api only.
-import { ApiError, api, el, query, resultCard, setRoot, shortFolder, showMessage } from "./common.js";
+import { ApiError, api, breakable, el, query, resultCard, setRoot, shortFolder, showMessage } from "./common.js";
+import { setUpCautions } from "./cautions.js";
+import { setUpPicker } from "./picker.js";
 import { clearExplanation, renderExplanation } from "./explain.js";
 
 const PAGE = 24;
-const BROWSER_PAGE = 60;
 const MIN_REGION = 0.04; // a region narrower than this (fraction of the image) is taken as a stray click
 
 const $ = (id) => document.getElementById(id);
@@ -38,6 +39,7 @@ const filterForm = $("filter-form");
 const folderFilter = $("folder-filter");
 const dateFrom = $("date-from");
 const dateTo = $("date-to");
+const dateError = $("date-error");
 const statusLine = $("status");
 const searchError = $("search-error");
 const start = $("start");
@@ -48,10 +50,6 @@ const explainTitle = $("explain-title");
 const explainBody = $("explain-body");
 const browserDialog = $("browser-dialog");
 const browserFolder = $("browser-folder");
-const browserGrid = $("browser-grid");
-const browserStatus = $("browser-status");
-const browserError = $("browser-error");
-const browserMore = $("browser-more");
 
 // --- query ----------------------------------------------------------------------------------
 function queryParams() {
@@ -74,11 +72,11 @@ function setQuery(q) {
   dropzone.classList.add("is-compact");
   start.hidden = true;
   queryImage.alt = `The query image: ${q.label}`;
-  queryLabel.textContent = q.label;
+  queryLabel.replaceChildren(...breakable(q.label));
   queryImage.src = q.image;
   updateRegionUI();
   updateURL();
-  runSearch();
+  runSearch({ reveal: true });
 }
 
 async function uploadFile(file, how) {
@@ -101,7 +99,6 @@ function useItem(item) {
   if (explainDialog.open) explainDialog.close();
   if (browserDialog.open) browserDialog.close();
   setQuery({ kind: "item", item: item.id, image: `/media/items/${item.id}/image`, label: item.name, path: item.path });
-  queryView.scrollIntoView({ block: "nearest" });
 }
 
 fileInput.addEventListener("change", () => {
@@ -281,28 +278,54 @@ document.querySelectorAll('input[name="layer"]').forEach((radio) => {
 });
 
 folderFilter.addEventListener("change", () => state.query && runSearch());
-dateFrom.addEventListener("change", () => state.query && runSearch());
-dateTo.addEventListener("change", () => state.query && runSearch());
+dateFrom.addEventListener("change", () => (state.query ? runSearch() : datesInOrder(filters())));
+dateTo.addEventListener("change", () => (state.query ? runSearch() : datesInOrder(filters())));
 filterForm.addEventListener("submit", (e) => e.preventDefault());
-filterForm.addEventListener("reset", () => setTimeout(() => state.query && runSearch(), 0));
+filterForm.addEventListener("reset", () => setTimeout(() => (state.query ? runSearch() : datesInOrder(filters())), 0));
 
 function filters() {
   return { folder: folderFilter.value, date_from: dateFrom.value, date_to: dateTo.value };
 }
 
 // --- searching ------------------------------------------------------------------------------
-async function runSearch({ append = false } = {}) {
+const stacked = window.matchMedia("(max-width: 640px)"); // the columns stack (style.css)
+
+/** Bring the results into view after a search when they are out of it: after a new query, or any search
+    while the columns are stacked (the results then lie below the query and the filters). */
+function revealResults(newQuery) {
+  const heading = $("results-heading");
+  const first = (resultsList.firstElementChild || statusLine).getBoundingClientRect().top;
+  if (heading.getBoundingClientRect().top >= 0 && first < window.innerHeight - 120) return; // in view already
+  if (newQuery || stacked.matches) heading.scrollIntoView({ block: "start" });
+}
+
+/** A "from" date after the "to" date: said beside the fields, and the results shown so far are marked as
+    no longer answering the filters (dimmed, with a line saying so) until the dates are put right. */
+function datesInOrder(f) {
+  const wrong = Boolean(f.date_from && f.date_to && f.date_from > f.date_to);
+  showMessage(dateError, wrong ? "the “from” date is after the “to” date: swap them or clear one." : "");
+  for (const input of [dateFrom, dateTo]) input.toggleAttribute("aria-invalid", wrong);
+  if (wrong) {
+    state.seq += 1; // a search still under way would answer the old dates
+    resultsList.dataset.stale = "true";
+    moreButton.hidden = true;
+    statusLine.textContent = state.results.length ? "These results are for the earlier filters: the dates need fixing." : "";
+  } else {
+    delete resultsList.dataset.stale;
+  }
+  return !wrong;
+}
+
+async function runSearch({ append = false, reveal = false } = {}) {
   if (!state.query) return;
   const f = filters();
-  if (f.date_from && f.date_to && f.date_from > f.date_to) {
-    showMessage(searchError, "the start date is after the end date.");
-    return;
-  }
+  if (!datesInOrder(f)) return;
   const seq = ++state.seq;
   const offset = append ? state.results.length : 0;
   showMessage(searchError, "");
   resultsList.setAttribute("aria-busy", "true");
-  moreButton.disabled = true;
+  // Not `disabled`: a disabled button drops the keyboard focus to <body> while the next page loads.
+  moreButton.setAttribute("aria-disabled", "true");
   statusLine.textContent = append ? "Loading more results…" : "Searching…";
   try {
     const r = await api("/api/search", { ...queryParams(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
@@ -317,8 +340,13 @@ async function runSearch({ append = false } = {}) {
     resultsList.dataset.layer = r.layer;
     resultsList.dataset.box = r.query.box ? r.query.box.map((v) => v.toFixed(3)).join(",") : "";
     r.results.forEach((res, i) => resultsList.append(resultCard(res, first + i + 1, { onExplain: openExplanation, onUse: useItem })));
+    const moreHadFocus = document.activeElement === moreButton;
     moreButton.hidden = !r.more;
     describeResults();
+    if (append && moreHadFocus && resultsList.children[first]) {
+      resultsList.children[first].querySelector(".result-main").focus(); // carry on reading where the new ones start
+    }
+    if (!append) revealResults(reveal);
   } catch (err) {
     if (seq !== state.seq) return;
     statusLine.textContent = "";
@@ -331,7 +359,7 @@ async function runSearch({ append = false } = {}) {
   } finally {
     if (seq === state.seq) {
       resultsList.removeAttribute("aria-busy");
-      moreButton.disabled = false;
+      moreButton.removeAttribute("aria-disabled");
     }
   }
 }
@@ -355,7 +383,9 @@ function describeResults() {
   statusLine.textContent = text;
 }
 
-moreButton.addEventListener("click", () => runSearch({ append: true }));
+moreButton.addEventListener("click", () => {
+  if (moreButton.getAttribute("aria-disabled") !== "true") runSearch({ append: true });
+});
 
 // --- URL: an item query, its layer and region can be bookmarked -----------------------------
 function updateURL() {
@@ -374,7 +404,7 @@ let explainOpener = null;
 
 async function openExplanation(result) {
   explainOpener = document.activeElement;
-  explainTitle.textContent = `Why ${result.name} matched`;
+  explainTitle.replaceChildren("Why ", ...breakable(result.name), " matched");
   clearExplanation(explainBody);
   explainBody.append(el("p", { class: "loading", role: "status", text: "Working out where the similarity comes from…" }));
   if (!explainDialog.open) explainDialog.showModal();
@@ -419,56 +449,14 @@ for (const dialog of [explainDialog, browserDialog]) {
   });
 }
 
-// --- archive browser ------------------------------------------------------------------------
-const browser = { offset: 0, total: 0, loaded: false, seq: 0 };
-
-async function loadBrowserPage(reset) {
-  const seq = ++browser.seq;
-  if (reset) {
-    browser.offset = 0;
-    browserGrid.replaceChildren();
-  }
-  showMessage(browserError, "");
-  browserStatus.textContent = "Loading…";
-  try {
-    const page = await api("/api/items", { offset: browser.offset, limit: BROWSER_PAGE, folder: browserFolder.value });
-    if (seq !== browser.seq) return;
-    browser.total = page.total;
-    browser.offset += page.items.length;
-    for (const item of page.items) {
-      const img = el("img", { src: `${item.thumbnail}?size=128`, alt: "", loading: "lazy", decoding: "async", width: 128, height: 128 });
-      const button = el(
-        "button",
-        { type: "button", class: "browser-item", title: item.path, "aria-label": `Search with ${item.name} (${shortFolder(item.folder)})` },
-        el("span", { class: "thumb" }, img),
-        el("span", { class: "browser-name", text: item.name }),
-      );
-      button.addEventListener("click", () => useItem(item));
-      browserGrid.append(el("li", {}, button));
-    }
-    browser.loaded = true;
-    browserStatus.textContent = browser.total
-      ? `Showing ${browser.offset.toLocaleString()} of ${browser.total.toLocaleString()} items. Select one to search with it.`
-      : "No items in this folder.";
-    browserMore.hidden = browser.offset >= browser.total;
-  } catch (err) {
-    browserStatus.textContent = "";
-    showMessage(browserError, err.message);
-  }
-}
-
-function openBrowser() {
-  browserDialog.showModal();
-  if (!browser.loaded) loadBrowserPage(true);
-}
-
-$("browse-button").addEventListener("click", openBrowser);
-$("start-browse").addEventListener("click", openBrowser);
-browserFolder.addEventListener("change", () => loadBrowserPage(true));
-browserMore.addEventListener("click", () => loadBrowserPage(false));
+// --- archive picker (picker.js) -------------------------------------------------------------
+const picker = setUpPicker(useItem);
+$("browse-button").addEventListener("click", () => picker.open());
+$("start-browse").addEventListener("click", () => picker.open());
 
 // --- start-up -------------------------------------------------------------------------------
 async function startUp() {
+  setUpCautions();
   try {
     const [info, folders] = await Promise.all([api("/api/info"), api("/api/folders")]);
     for (const l of info.layers) state.layers[l.name] = { hint: l.hint, channels: l.channels };

@@ -58,6 +58,13 @@ export function el(tag, attrs = {}, ...children) {
   return node;
 }
 
+/** A file name or path as nodes that may wrap only after "/", "_" or "-" (a <wbr> there), never inside a word
+    or a number; style.css breaks a single part longer than its box only as a last resort. */
+export function breakable(text) {
+  const parts = String(text ?? "").split(/(?<=[/_-])/);
+  return parts.flatMap((part, i) => (i ? [document.createElement("wbr"), part] : [part]));
+}
+
 export function formatScore(score) {
   return Number(score).toFixed(3);
 }
@@ -69,17 +76,18 @@ export function formatPercent(fraction) {
   return "under 0.1%";
 }
 
+/** A file size in decimal units with one decimal, "39.1 kB", "2.4 MB": as the item page, the duplicate report
+    and the command line write it (index/common/units.py size_text; the page's footer states the convention). */
 export function formatSize(bytes) {
   if (bytes === null || bytes === undefined) return "";
-  if (bytes < 1024) return `${bytes} bytes`;
-  const units = ["KB", "MB", "GB"];
-  let value = bytes / 1024;
-  let unit = 0;
-  while (value >= 1024 && unit < units.length - 1) {
-    value /= 1024;
-    unit += 1;
+  if (bytes < 1000) return `${bytes} ${bytes === 1 ? "byte" : "bytes"}`;
+  const units = ["kB", "MB", "GB", "TB"];
+  for (let i = 0; i < units.length; i += 1) {
+    const step = 1000 ** (i + 1);
+    const tenths = Math.floor((bytes * 10 + step / 2) / step); // half up, in whole numbers as size_text does
+    if (tenths < 10000 || i === units.length - 1) return `${Math.floor(tenths / 10)}.${tenths % 10} ${units[i]}`;
   }
-  return `${value >= 100 ? value.toFixed(0) : value.toFixed(1)} ${units[unit]}`;
+  return "";
 }
 
 /** Folder shown relative to the archive's common root, which `setRoot` learns from /api/folders. */
@@ -131,10 +139,11 @@ export function showMessage(node, text) {
 
 /** A result card: the main button opens the explanation; actions below. */
 export function resultCard(result, rank, { onExplain, onUse, explainHref } = {}) {
-  const details = [`${result.width} × ${result.height}`, formatSize(result.size), result.date].filter(Boolean);
-  const meta = el("span", { class: "result-meta" }, el("span", { class: "result-folder", text: shortFolder(result.folder) }));
+  const details = [`${result.width} × ${result.height}`, formatSize(result.size)].filter(Boolean);
+  const meta = el("span", { class: "result-meta" }, el("span", { class: "result-folder" }, breakable(shortFolder(result.folder))));
   const line = el("span", { class: "result-meta" });
-  details.forEach((d, i) => line.append(i ? " · " : "", el("span", { text: d })));
+  details.forEach((d, i) => line.append(i ? " · " : "", el("span", { class: i ? "result-size" : null, text: d })));
+  const date = result.date ? el("span", { class: "result-meta" }, el("span", { class: "result-date", text: result.date })) : null;
   const img = el("img", {
     src: result.thumbnail,
     alt: `Thumbnail of ${result.name}`,
@@ -149,9 +158,10 @@ export function resultCard(result, rank, { onExplain, onUse, explainHref } = {})
       "span",
       { class: "result-text" },
       el("span", { class: "score-line" }, el("span", { class: "score-label", text: "score" }), el("span", { class: "score", text: formatScore(result.score) })),
-      el("span", { class: "result-name", text: result.name }),
+      el("span", { class: "result-name" }, breakable(result.name)),
       meta,
       line,
+      date,
       el("span", { class: "why", text: "Why it matched" }),
     ),
   ];
@@ -161,7 +171,7 @@ export function resultCard(result, rank, { onExplain, onUse, explainHref } = {})
   main.title = result.path;
   const actions = el("span", { class: "result-actions" }, el("a", { href: result.page, text: "Details" }));
   if (onUse) {
-    actions.append(el("button", { type: "button", class: "link-button", text: "Search with this", onclick: () => onUse(result) }));
+    actions.append(el("button", { type: "button", class: "link-button", text: "Use as query", title: `Search the archive with ${result.name}`, onclick: () => onUse(result) }));
   }
   return el("li", { class: "result", dataset: { id: result.id } }, main, actions);
 }

@@ -1,6 +1,6 @@
 // The duplicate review page: groups side by side, a person's decisions, and the plan export.
 // Nothing here moves a file: the plan is downloaded and applied from the command line.
-import { api, el, formatScore, formatSize, showMessage } from "./common.js";
+import { api, breakable, el, formatScore, formatSize, showMessage } from "./common.js";
 
 const list = document.getElementById("dup-groups");
 const statusLine = document.getElementById("dup-status");
@@ -95,8 +95,8 @@ function memberCard(g, m) {
     el("a", { class: "dup-thumb", href: m.page, title: m.path },
       el("img", { src: m.thumbnail, alt: `Thumbnail of ${m.name}`, loading: "lazy", decoding: "async" })),
     el("p", { class: "dup-decision", text: words.text }),
-    el("p", { class: "dup-name", text: m.name }),
-    el("p", { class: "dup-folder path", text: m.folder }),
+    el("p", { class: "dup-name" }, breakable(m.name)),
+    el("p", { class: "dup-folder path" }, breakable(m.folder)),
     facts,
     el("div", { class: "dup-controls" },
       el("span", { class: "dup-control" }, keep, el("label", { for: keep.id, text: "This one stays" })),

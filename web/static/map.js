@@ -1,6 +1,6 @@
 // The map page: loads the layout from /api/map in chunks, filters by folder and date, hover and
 // click on items, box and lasso selection with the paths downloaded as CSV or JSON.
-import { api, ApiError, setRoot, shortFolder, showMessage } from "./common.js";
+import { api, ApiError, breakable, setRoot, shortFolder, showMessage } from "./common.js";
 import { MapCanvas } from "./mapcanvas.js";
 
 const app = document.getElementById("map-app");
@@ -228,8 +228,8 @@ async function choose(i) {
   if (!item) return;
   document.getElementById("map-item-thumb").src = `/media/items/${id}/thumbnail?size=128`;
   document.getElementById("map-item-thumb").alt = `Thumbnail of ${item.name}`;
-  document.getElementById("map-item-name").textContent = item.name;
-  document.getElementById("map-item-path").textContent = item.path;
+  document.getElementById("map-item-name").replaceChildren(...breakable(item.name));
+  document.getElementById("map-item-path").replaceChildren(...breakable(item.path));
   document.getElementById("map-item-date").textContent = `${item.width} × ${item.height} · ${item.date}`;
   document.getElementById("map-item-search").href = `/?item=${id}&layer=${encodeURIComponent(state.layer)}`;
   document.getElementById("map-item-open").href = `/items/${id}`;

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .base import Backbone, BackboneError
+from .base import USER_WEIGHTS, Backbone, BackboneError
 
 DEFAULT_BACKBONE = "efficientnet_lite0"
 TORCHVISION_NAMES = ("resnet18", "resnet50", "mobilenet_v3_small", "mobilenet_v3_large")
@@ -20,6 +20,17 @@ PRESET_HINTS = {
     "parts": "shapes and object parts",
     "objects": "whole objects and scenes",
 }
+
+# The networks in words for people who do not know them: all are general-purpose image classifiers
+# trained on ImageNet's everyday photographs (they differ in size, which the technical name tells).
+PLAIN_NAMES = {name: "general-purpose photo recogniser" for name in NAMES}
+
+
+def plain_name(name: str, weights_source: str = "") -> str:
+    """What the network is, in plain words; with a user's own weights, nothing is claimed of its training."""
+    if weights_source == USER_WEIGHTS:
+        return "image recognition network with weights you supplied"
+    return PLAIN_NAMES.get(name, "image recognition network")
 
 
 def get_backbone(name: str = DEFAULT_BACKBONE, weights: str | Path | None = None) -> Backbone:
