@@ -34,14 +34,14 @@ from .model.choice import ENGINES
 from .model.pooling import PCAWhitening
 from .model.settings import available_layers, backbone_of, check_settings, layer_specs, new_manifest_apart
 from .search.exemplars import Exemplars
-from .search.combined import COMBINED
+from .search.combined import COMBINED, COMBINED_WEIGHTS
 from .search.jobs import SearchJobs
 from .search.nearest import item_date
 from .vectors.kinds import bytes_per_vector_of, type_name
 from .vectors.reader import Reader, VectorStore
 
 # Archive, and what else the CLI and web/ may use: they import nothing from index but this module.
-__all__ = ["Archive", "ArchiveError", "COMBINED", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "NAMES",
+__all__ = ["Archive", "ArchiveError", "COMBINED", "COMBINED_WEIGHTS", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "NAMES",
            "connect_cluster", "fit_square", "item_date", "open_image", "quiet_pillow_warnings", "sqlite_message",
            "type_name"]
 

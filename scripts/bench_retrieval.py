@@ -37,7 +37,7 @@ PER_CLASS = 50
 CONFIGS = [  # (label, layer, expand)
     ("colour", "colour", 0), ("texture", "texture", 0), ("parts", "parts", 0), ("objects", "objects", 0),
     ("combined (parts .5, objects .5)", "combined", 0),
-    ("parts .25, objects .75", {"parts": 0.25, "objects": 0.75}, 0),
+    ("parts .75, objects .25", {"parts": 0.75, "objects": 0.25}, 0),
     ("texture, parts, objects 1/3 each", {"texture": 1, "parts": 1, "objects": 1}, 0),
     ("parts + expand 3", "parts", 3), ("objects + expand 3", "objects", 3), ("combined + expand 3", "combined", 3),
 ]
@@ -56,7 +56,7 @@ def make_sets(workdir: Path) -> None:
         for n, i in enumerate(np.flatnonzero(digits.target == c)[:PER_CLASS]):
             a = (digits.images[i] * (255 / 16)).astype(np.uint8)
             Image.fromarray(a).resize((64, 64), Image.BICUBIC).convert("RGB").save(folder / f"{n:03d}.png")
-    faces = lfw_subset()
+    faces = (np.clip(lfw_subset(), 0, 1) * 255).round().astype(np.uint8)  # floats 0..1 (its docstring says uint8)
     for n, a in enumerate(faces):
         folder = workdir / "faces" / ("face" if n < 100 else "non-face")
         folder.mkdir(parents=True, exist_ok=True)

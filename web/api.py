@@ -169,8 +169,12 @@ def explain():
     if match is None:
         raise params.BadRequest("give match=ID, the result to explain")
     mode = params.text("mode", 20) or "centred"  # Archive.explain refuses modes it does not know (400)
+    layer = params.layer(h.archive.layer_names + [COMBINED])
+    if layer == COMBINED:
+        raise params.BadRequest("an explanation is made on one layer at a time: choose a single layer to see "
+                                "why an item matched")
     with h.lock:
-        out = h.archive.explain(query, match, layer=params.layer(h.archive.layer_names), box=params.box(), mode=mode)
+        out = h.archive.explain(query, match, layer=layer, box=params.box(), mode=mode)
         match_row = h.archive.item(match)
     for channel in out["channels"]:
         for e in channel["exemplars"]:

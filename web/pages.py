@@ -5,7 +5,7 @@ from datetime import datetime, timezone
 
 from flask import Blueprint, render_template
 
-from index.api import ArchiveError
+from index.api import COMBINED_WEIGHTS, ArchiveError
 
 from .archive_access import holder
 
@@ -30,7 +30,9 @@ def home():
     with h.lock:
         h.archive.refresh()
         info = h.archive.info()
-    return render_template("search.html", info=info)
+    names = {l["name"] for l in info["layers"]}
+    combined = COMBINED_WEIGHTS if set(COMBINED_WEIGHTS) <= names else None  # the "combined" choice, its weights
+    return render_template("search.html", info=info, combined=combined)
 
 
 @bp.get("/items/<int:item_id>")

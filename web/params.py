@@ -24,8 +24,8 @@ def integer(name: str, default: int | None = None, lo: int = 0, hi: int = 10**9)
 
 
 def integers(name: str, most: int = 50) -> list[int]:
-    """Every value of a repeated whole-number parameter (name=1&name=2), at most `most` of them."""
-    raw = request.values.getlist(name)
+    """Every value of a repeated whole-number parameter (name=1&name=2, or name=1,2), at most `most` of them."""
+    raw = [v for value in request.values.getlist(name) for v in value.split(",") if v != ""]
     if len(raw) > most:
         raise BadRequest(f"{name} may be given at most {most} times")
     if not all(re.fullmatch(r"\d{1,18}", v) for v in raw):

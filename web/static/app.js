@@ -2,6 +2,7 @@
 // region, page through results, and open "why it matched" for any of them. Talks to /api only.
 import { ApiError, api, el, query, resultCard, setRoot, shortFolder, showMessage } from "./common.js";
 import { clearExplanation, renderExplanation } from "./explain.js";
+import { createMarks } from "./feedback.js";
 
 const PAGE = 24;
 const BROWSER_PAGE = 60;
@@ -52,6 +53,7 @@ const browserGrid = $("browser-grid");
 const browserStatus = $("browser-status");
 const browserError = $("browser-error");
 const browserMore = $("browser-more");
+const marks = createMarks($("marks-panel"), () => runSearch()); // like/unlike marks (feedback.js)
 
 // --- query ----------------------------------------------------------------------------------
 function queryParams() {
@@ -69,6 +71,7 @@ function setQuery(q) {
   state.query = q;
   state.box = null;
   state.explainCache.clear();
+  marks.clear();
   showMessage(queryError, "");
   queryView.hidden = false;
   dropzone.classList.add("is-compact");
@@ -305,18 +308,23 @@ async function runSearch({ append = false } = {}) {
   moreButton.disabled = true;
   statusLine.textContent = append ? "Loading more results…" : "Searching…";
   try {
-    const r = await api("/api/search", { ...queryParams(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
+    const r = await api("/api/search", { ...queryParams(), ...marks.params(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
     if (seq !== state.seq) return; // a newer search has started
     if (!append) {
       state.results = [];
       resultsList.replaceChildren();
+      marks.forgetCards();
     }
     const first = state.results.length;
     state.results.push(...r.results);
     state.more = r.more;
     resultsList.dataset.layer = r.layer;
     resultsList.dataset.box = r.query.box ? r.query.box.map((v) => v.toFixed(3)).join(",") : "";
-    r.results.forEach((res, i) => resultsList.append(resultCard(res, first + i + 1, { onExplain: openExplanation, onUse: useItem })));
+    r.results.forEach((res, i) => {
+      const card = resultCard(res, first + i + 1, { onExplain: openExplanation, onUse: useItem });
+      marks.decorate(card, res);
+      resultsList.append(card);
+    });
     moreButton.hidden = !r.more;
     describeResults();
   } catch (err) {
