@@ -41,9 +41,9 @@ from .vectors.kinds import bytes_per_vector_of, type_name
 from .vectors.reader import Reader, VectorStore
 
 # Archive, and what else the CLI and web/ may use: they import nothing from index but this module.
-__all__ = ["Archive", "ArchiveError", "COMBINED", "COMBINED_WEIGHTS", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "NAMES",
-           "connect_cluster", "fit_square", "item_date", "open_image", "quiet_pillow_warnings", "sqlite_message",
-           "type_name"]
+__all__ = ["Archive", "ArchiveError", "COMBINED", "COMBINED_WEIGHTS", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError",
+           "ENGINES", "NAMES", "connect_cluster", "fit_square", "item_date", "open_image", "quiet_pillow_warnings",
+           "sqlite_message", "type_name"]
 
 
 class Archive(SearchJobs, DuplicateJobs, MapJobs):
