@@ -195,6 +195,13 @@ def search(images, db, item_ids, unlike_images, unlike_ids, expand, layer, k, bo
                if "weights" not in result else
                "layers combined: score = " + " + ".join(f"{w:g} x {n}" for n, w in result["weights"].items())
                + " cosine similarity")
+    q = result["query"]
+    if "examples" in q:
+        rule = q["rule"]
+        click.echo(f"{len(q['examples'])} example(s), {len(q['unlike'])} counter-example(s) combined by Rocchio's rule "
+                   f"(alpha {rule['alpha']:g}, gamma {rule['gamma']:g}; docs/retrieval.md)")
+    if "expand" in q:
+        click.echo(f"query expanded with the {q['expand']['n']} best results (alpha-QE, power {q['expand']['power']:g})")
     for rank, r in enumerate(result["results"], 1):
         click.echo(f"{rank:3d}  {r['score']:.4f}  {r['width']}x{r['height']}  id {r['id']:<6d} {r['path']}")
 
