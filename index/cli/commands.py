@@ -201,7 +201,8 @@ def search(images, db, item_ids, unlike_images, unlike_ids, expand, layer, k, bo
         click.echo(f"{len(q['examples'])} example(s), {len(q['unlike'])} counter-example(s) combined by Rocchio's rule "
                    f"(alpha {rule['alpha']:g}, gamma {rule['gamma']:g}; docs/retrieval.md)")
     if "expand" in q:
-        click.echo(f"query expanded with the {q['expand']['n']} best results (alpha-QE, power {q['expand']['power']:g})")
+        n, power = q["expand"]["n"], q["expand"]["power"]
+        click.echo(f"query expanded with the {n} best results (alpha-QE, power {power:g})")
     for rank, r in enumerate(result["results"], 1):
         click.echo(f"{rank:3d}  {r['score']:.4f}  {r['width']}x{r['height']}  id {r['id']:<6d} {r['path']}")
 
