@@ -12,6 +12,7 @@ from .archive_access import holder
 
 bp = Blueprint("api", __name__, url_prefix="/api")
 OPENAPI = Path(__file__).with_name("openapi.json")
+UPLOADS = 10  # uploads per search, each run through the network (item ids are read from the stores: 50)
 
 
 @bp.errorhandler(params.BadRequest)
@@ -128,7 +129,8 @@ def search():
     h = holder()
     examples, tokens = _examples()
     like = params.integers("like_item")
-    unlike = [*params.integers("unlike_item"), *(h.recall(t).image() for t in params.texts("unlike_upload", 40))]
+    unlike = [*params.integers("unlike_item"),
+              *(h.recall(t).image() for t in params.texts("unlike_upload", 40, most=UPLOADS))]
     k = params.integer("k", 24, 1, 500)
     offset = params.integer("offset", 0, 0, 100_000)
     expand = params.integer("expand", 0, 0, 50)
@@ -150,7 +152,7 @@ def _examples():
     """The request's query examples, in order: a posted file, then upload=TOKEN and item=ID (repeatable).
     The box crops the first. Returns (examples, their upload tokens or None)."""
     h = holder()
-    files, tokens, items = [], params.texts("upload", 40), params.integers("item")
+    files, tokens, items = [], params.texts("upload", 40, most=UPLOADS), params.integers("item")
     if "file" in request.files:
         files = [h.remember(_decode_upload())]
     found = [(h.recall(t), t) for t in files + tokens] + [(i, None) for i in items]
