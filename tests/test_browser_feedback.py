@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 
-from tests.test_browser import _open, _shot, _upload, browser, demo_subset, page, server  # noqa: F401 (fixtures)
+from tests.test_browser import DEMO, _open, _shot, _upload, browser, demo_subset, page, server  # noqa: F401
 
 
 def _ids(page):
@@ -63,3 +63,16 @@ def test_combined_choice_searches_with_its_weights(page):
         page.check('input[name="layer"][value="combined"]')
     assert resp.value.json()["weights"] == {"parts": 0.5, "objects": 0.5}
     page.wait_for_selector('#results[data-layer="combined"]', state="attached")
+
+
+def test_another_example_image_joins_the_query_and_can_be_removed(page):
+    _open(page)
+    _upload(page)
+    with page.expect_response(lambda r: "/api/search" in r.url and "upload=" in r.url and "%2C" in r.url) as resp:
+        page.set_input_files("#extra-input", str(DEMO / "rescans-2026/scan-0002.jpg"))
+    doc = resp.value.json()
+    assert len(doc["query"]["examples"]) == 2 and doc["query"]["rule"]["name"] == "rocchio"
+    assert page.locator("#extra-list li").count() == 1
+    with page.expect_response(lambda r: "/api/search" in r.url and "%2C" not in r.url) as resp:
+        page.click("#extra-list button")
+    assert "examples" not in resp.value.json()["query"] and page.locator("#extra-list li").count() == 0

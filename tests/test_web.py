@@ -75,8 +75,8 @@ def test_search_with_several_examples_marks_expansion_and_combined_layers(client
     assert set(plain["query"]) == {"id", "path", "upload"}  # one example: the answer as before
     res = c.get(f"/api/search?item={a}&item={b}&upload={token}&like_item={moon}&unlike_item={ids['page.png']}"
                 f"&unlike_upload={token}&expand=2&layer=combined&k=40").get_json()
-    assert [q["id"] for q in res["query"]["examples"]] == [None, a, b]  # uploads first, then items
-    assert res["query"]["upload"] == token and res["query"]["examples"][0]["upload"] == token
+    assert [q["id"] for q in res["query"]["examples"]] == [a, b, None]  # items first, then uploads
+    assert res["query"]["upload"] is None and res["query"]["examples"][2]["upload"] == token
     assert [q["id"] for q in res["query"]["like"]] == [moon] and len(res["query"]["unlike"]) == 2
     assert res["layer"] == "combined" and set(res["weights"]) == {"parts", "objects"}
     assert res["query"]["rule"]["name"] == "rocchio" and res["query"]["expand"]["n"] == 2

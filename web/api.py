@@ -141,7 +141,7 @@ def search():
             k=k, offset=offset, box=params.box(), folder=params.text("folder", 4096), date_from=params.date("date_from"),
             date_to=params.date("date_to"), like=like, unlike=unlike, expand=expand,
         )
-    result["query"]["upload"] = tokens[0]
+    result["query"]["upload"] = tokens[0]  # the first example's (None for an item)
     for q, token in zip(result["query"].get("examples", []), tokens):
         q["upload"] = token
     result["results"] = [_summary(r) for r in result["results"]]
@@ -149,13 +149,14 @@ def search():
 
 
 def _examples():
-    """The request's query examples, in order: a posted file, then upload=TOKEN and item=ID (repeatable).
-    The box crops the first. Returns (examples, their upload tokens or None)."""
+    """The request's query examples, in order: a posted file, then item=ID, then upload=TOKEN (repeatable;
+    the page adds more images to an item query as uploads). The box crops the first. Returns (examples,
+    their upload tokens or None)."""
     h = holder()
     files, tokens, items = [], params.texts("upload", 40, most=UPLOADS), params.integers("item")
     if "file" in request.files:
         files = [h.remember(_decode_upload())]
-    found = [(h.recall(t), t) for t in files + tokens] + [(i, None) for i in items]
+    found = [(h.recall(t), t) for t in files] + [(i, None) for i in items] + [(h.recall(t), t) for t in tokens]
     if not found:
         raise params.BadRequest("give a query: upload a file, or pass upload=TOKEN or item=ID")
     box = params.box()

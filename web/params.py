@@ -34,8 +34,8 @@ def integers(name: str, most: int = 50) -> list[int]:
 
 
 def texts(name: str, max_len: int = 200, most: int = 50) -> list[str]:
-    """Every non-empty value of a repeated text parameter, at most `most` of them."""
-    raw = [v for v in request.values.getlist(name) if v]
+    """Every non-empty value of a repeated text parameter (name=a&name=b, or name=a,b), at most `most` of them."""
+    raw = [v for value in request.values.getlist(name) for v in value.split(",") if v]
     if len(raw) > most:
         raise BadRequest(f"{name} may be given at most {most} times")
     if any(len(v) > max_len or "\x00" in v for v in raw):

@@ -2,7 +2,7 @@
 // region, page through results, and open "why it matched" for any of them. Talks to /api only.
 import { ApiError, api, el, query, resultCard, setRoot, shortFolder, showMessage } from "./common.js";
 import { clearExplanation, renderExplanation } from "./explain.js";
-import { createMarks } from "./feedback.js";
+import { createExtras, createMarks } from "./feedback.js";
 
 const PAGE = 24;
 const BROWSER_PAGE = 60;
@@ -54,6 +54,7 @@ const browserStatus = $("browser-status");
 const browserError = $("browser-error");
 const browserMore = $("browser-more");
 const marks = createMarks($("marks-panel"), () => runSearch()); // like/unlike marks (feedback.js)
+const extras = createExtras($("extra-examples"), () => runSearch()); // more example images (feedback.js)
 
 // --- query ----------------------------------------------------------------------------------
 function queryParams() {
@@ -72,6 +73,7 @@ function setQuery(q) {
   state.box = null;
   state.explainCache.clear();
   marks.clear();
+  extras.clear();
   showMessage(queryError, "");
   queryView.hidden = false;
   dropzone.classList.add("is-compact");
@@ -308,7 +310,7 @@ async function runSearch({ append = false } = {}) {
   moreButton.disabled = true;
   statusLine.textContent = append ? "Loading more results…" : "Searching…";
   try {
-    const r = await api("/api/search", { ...queryParams(), ...marks.params(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
+    const r = await api("/api/search", { ...extras.params(queryParams()), ...marks.params(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
     if (seq !== state.seq) return; // a newer search has started
     if (!append) {
       state.results = [];

@@ -1,8 +1,9 @@
 // Like / unlike marks on the search page's results. A mark refines the query in place: the server
 // combines the query with the marked items by Rocchio's rule (docs/retrieval.md) and searches again.
 // The marks are listed in their own panel, each can be removed, the last change undone, and the
-// list exported as paths (CSV or JSON, made in the browser; nothing is sent anywhere).
-import { el, shortFolder } from "./common.js";
+// list exported as paths (CSV or JSON, made in the browser; nothing is sent anywhere). More example images
+// can be added to the query (createExtras): they count as much as the first one.
+import { ApiError, api, el, shortFolder } from "./common.js";
 
 const LABEL = { like: "More like this", unlike: "Not like this" };
 
@@ -145,4 +146,57 @@ export function createMarks(panel, onChange) {
 function csvField(value) {
   const s = String(value);
   return /[",\n\r]/.test(s) ? `"${s.replace(/"/g, '""')}"` : s;
+}
+
+/** More example images beside the query (uploaded to this server, kept like the first one). `box`: an
+ * element to draw into; `onChange()`: search again. */
+export function createExtras(box, onChange) {
+  const extras = []; // {upload, image, name}
+  const input = el("input", { type: "file", id: "extra-input", class: "file-input", accept: "image/*,.heic,.heif,.tif,.tiff" });
+  const error = el("p", { class: "message message-error", role: "alert", hidden: true });
+  const list = el("ul", { class: "marks-list", id: "extra-list", "aria-label": "More example images" });
+  box.append(
+    el("p", { class: "fine", text: "More images of what you want count as much as this one (their descriptors are averaged)." }),
+    input, el("label", { for: "extra-input", class: "button button-small", text: "Add another example image…" }), error, list,
+  );
+
+  input.addEventListener("change", async () => {
+    const file = input.files[0];
+    input.value = "";
+    if (!file) return;
+    error.hidden = true;
+    const form = new FormData();
+    form.append("file", file, file.name || "image");
+    try {
+      const r = await api("/api/queries", null, { method: "POST", body: form });
+      extras.push({ upload: r.upload, image: r.image, name: file.name || "image" });
+      draw();
+      onChange();
+    } catch (err) {
+      error.textContent = err instanceof ApiError ? err.message : "the image could not be sent to the server";
+      error.hidden = false;
+    }
+  });
+
+  function draw() {
+    list.replaceChildren(...extras.map((x, i) => el("li", { class: "marks-item", dataset: { upload: x.upload } },
+      el("img", { src: x.image, alt: "", width: 48, height: 48 }),
+      el("span", { class: "marks-text" }, el("span", { class: "marks-name", text: x.name })),
+      el("button", { type: "button", class: "link-button", text: "Remove", "aria-label": `Remove the example ${x.name}`,
+        onclick: () => { extras.splice(i, 1); draw(); onChange(); } }))));
+  }
+
+  /** The search parameters with the extra uploads after the query's own (the server takes a posted file,
+   * items, then uploads, so the query stays the first example and keeps its region). */
+  function params(base) {
+    const uploads = [base.upload, ...extras.map((x) => x.upload)].filter(Boolean);
+    return { ...base, upload: uploads.join(",") || null };
+  }
+
+  function clear() {
+    extras.length = 0;
+    draw();
+  }
+
+  return { params, clear, get size() { return extras.length; } };
 }
