@@ -3,8 +3,8 @@
 It composes the rooms below it: the catalog and manifest (index.db), the stores as this process reads
 them (index.vectors.reader.Reader), the indexer (index.ingest.indexer.Indexer), the model
 (index.model), searches (index.search), the duplicate job (index.duplicates) and the collection map
-(index.map). The last two are mixed in (DuplicateJobs, MapJobs: each room's methods of Archive, kept in
-that room), so this file stays a table of contents.
+(index.map). Search, duplicates and the map are mixed in (SearchJobs, DuplicateJobs, MapJobs: each room's
+methods of Archive, kept in that room), so this file stays a table of contents.
 """
 from __future__ import annotations
 
@@ -37,16 +37,18 @@ from .model.models import ArchiveModels
 from .model.pooling import PCAWhitening
 from .model.settings import available_layers, check_settings, new_manifest_apart
 from .search.exemplars import Exemplars
-from .search.nearest import item_date, nearest, row_filter
+from .search.combined import COMBINED, COMBINED_WEIGHTS
+from .search.jobs import SearchJobs
+from .search.nearest import item_date
 from .vectors.kinds import bytes_per_vector_of, type_name
 from .vectors.reader import Reader, VectorStore
 
 IMAGE_KINDS = ", ".join(sorted(e.lstrip(".") for e in SUPPORTED_EXTENSIONS))  # for messages
 
 # Archive, and what else the CLI and web/ may use: they import nothing from index but this module.
-__all__ = ["Archive", "ArchiveError", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError", "ENGINES", "IMAGE_KINDS",
-           "NAMES", "connect_cluster", "fit_square", "item_date", "open_image", "quiet_pillow_warnings",
-           "sqlite_message", "type_name"]
+__all__ = ["Archive", "ArchiveError", "COMBINED", "COMBINED_WEIGHTS", "DEFAULT_BACKBONE", "DISPLAY_SIDE", "DecodeError",
+           "ENGINES", "IMAGE_KINDS", "NAMES", "connect_cluster", "fit_square", "item_date", "open_image",
+           "quiet_pillow_warnings", "sqlite_message", "type_name"]
 
 
 def _inference_threads() -> int:
@@ -55,7 +57,7 @@ def _inference_threads() -> int:
     return cores()
 
 
-class Archive(DuplicateJobs, MapJobs):
+class Archive(SearchJobs, DuplicateJobs, MapJobs):
     """One database folder: catalog.sqlite, each layer's vector store, manifest.json."""
 
     def __init__(self, db: Path, manifest: dict, catalog: Catalog | None = None):
@@ -206,36 +208,6 @@ class Archive(DuplicateJobs, MapJobs):
         if isinstance(query, (int, np.integer)):
             query = self.item(int(query))["path"]
         return media.query_image(query, decode_side(self.manifest["backbone"]["input_size"]), box)
-
-    def search(self, query, *, layer: str | None = None, k: int = 10, box=None, offset: int = 0,
-               folder: str | None = None, date_from: str | None = None, date_to: str | None = None) -> dict:
-        """Items most similar to the query, best first; score = cosine similarity of descriptors.
-
-        `folder` keeps items below that folder; `date_from`/`date_to` ('YYYY-MM-DD') filter on the
-        capture date, else the file date; `offset` pages through the ranking.
-        """
-        for label, value, least, what in (("k", k, 1, "positive"), ("offset", offset, 0, "non-negative")):
-            if not isinstance(value, (int, np.integer)) or value < least:
-                raise ArchiveError(f"{label} must be a {what} whole number, got {value!r}")
-        name = self._layer(layer)["name"]
-        try:
-            accept = row_filter(folder, date_from, date_to)
-        except ValueError as exc:
-            raise ArchiveError(str(exc)) from None
-        vector = self.query_vector(query, name, box)
-        by_id = isinstance(query, (int, np.integer))
-        exclude = int(query) if by_id and box is None else None
-        results, more = nearest(self.store(name), self.catalog, vector, int(k), exclude=exclude, offset=int(offset),
-                                accept=accept)
-        if by_id:
-            q = {"id": int(query), "path": self.item(int(query))["path"]}
-        elif isinstance(query, (str, os.PathLike)):
-            q = {"id": None, "path": os.path.abspath(os.fspath(query))}
-        else:
-            q = {"id": None, "path": None}
-        if box is not None:
-            q["box"] = list(box)
-        return {"query": q, "layer": name, "offset": int(offset), "more": more, "results": results}
 
     def explain(self, query, match: int, *, layer: str | None = None, box=None, mode: str = "centred") -> dict:
         """Why `match` (an id) is similar to the query: heat maps that add up to a score, region pairs,

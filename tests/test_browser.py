@@ -148,8 +148,9 @@ def test_page_shows_the_cautions_and_labels_every_control(page):
     assert unlabelled == []
     # The layer chooser offers every layer with its plain-language hint.
     hints = page.locator(".layer-option").all_inner_texts()
-    assert len(hints) == 4 and any("colour" in h.lower() for h in hints) and any("objects" in h.lower() for h in hints)
+    assert len(hints) == 5 and any("colour" in h.lower() for h in hints) and any("objects" in h.lower() for h in hints)
     assert page.locator('input[name="layer"]:checked').get_attribute("value") == "parts"
+    assert "0.5 × parts + 0.5 × objects" in hints[-1]  # the combined choice states its weights
 
 
 def test_upload_shows_results_with_the_original_first(page, demo_subset):

@@ -59,7 +59,27 @@ def test_errors_are_one_line_without_a_traceback(tmp_path):
     assert out.exit_code == 2
     assert "not a kinscope database" in out.output and "Traceback" not in out.output
     out = runner.invoke(main, ["search", "--db", str(tmp_path)])
-    assert out.exit_code == 2 and "either IMAGE or --id" in out.output
+    assert out.exit_code == 2 and "give an IMAGE or --id N" in out.output
+
+
+def test_several_examples_unlikes_and_expansion_from_the_command_line(tmp_path):
+    _images(tmp_path / "imgs", 6)
+    runner = CliRunner()
+    db = str(tmp_path / "db")
+    assert runner.invoke(main, ["index", str(tmp_path / "imgs"), "--db", db, "-q", "--layers", "colour,texture"]
+                         ).exit_code == 0
+    one = json.loads(runner.invoke(main, ["search", str(tmp_path / "imgs" / "1.png"), "--db", db, "--json"]).output)
+    item = one["results"][0]["id"]
+    out = runner.invoke(main, ["search", str(tmp_path / "imgs" / "0.png"), str(tmp_path / "imgs" / "1.png"),
+                               "--id", str(item), "--unlike", str(tmp_path / "imgs" / "5.png"), "--expand", "1",
+                               "--db", db, "--json", "-k", "6"])
+    assert out.exit_code == 0, out.output
+    doc = json.loads(out.output)
+    assert [q["id"] for q in doc["query"]["examples"]] == [None, None, item]
+    assert doc["query"]["unlike"][0]["path"].endswith("5.png") and doc["query"]["expand"]["n"] == 1
+    assert item not in [r["id"] for r in doc["results"]] and len(doc["results"]) == 5
+    out = runner.invoke(main, ["search", "--id", str(item), "--layer", "combined", "--db", db])
+    assert out.exit_code == 2 and "lacks" in out.output and "Traceback" not in out.output
 
 
 def test_python_dash_m_index_runs_the_same_cli():
@@ -127,11 +147,6 @@ def test_help_is_whole_and_says_what_commands_do():
         for param in command.params:
             if isinstance(param, click.Option) and param.name != "help":
                 assert param.help, f"{name} {param.opts[0]} has no help text"
-
-
-def test_search_refuses_two_ids(tmp_path):
-    out = CliRunner().invoke(main, ["search", "--id", "65", "--id", "3", "--db", str(tmp_path)])
-    assert out.exit_code == 2 and "give one --id" in out.output and "65, 3" in out.output
 
 
 def test_duplicates_output_gives_mtime_in_iso_8601_with_the_number_beside(tmp_path):

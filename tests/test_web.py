@@ -66,6 +66,27 @@ def test_search_by_posted_file_and_by_item_with_a_box(client, sample_images):
     assert boxed["query"]["box"] == [0.1, 0.1, 0.9, 0.9]
 
 
+def test_search_with_several_examples_marks_expansion_and_combined_layers(client, sample_images):
+    c, _ = client
+    token = _upload(c, _png(sample_images["chelsea"])).get_json()["upload"]
+    ids = {x["name"]: x["id"] for x in c.get("/api/items?limit=100").get_json()["items"]}
+    a, b, moon = ids["coffee.png"], ids["rocket.png"], ids["moon.png"]
+    plain = c.get(f"/api/search?item={a}&k=5").get_json()
+    assert set(plain["query"]) == {"id", "path", "upload"}  # one example: the answer as before
+    res = c.get(f"/api/search?item={a}&item={b}&upload={token}&like_item={moon}&unlike_item={ids['page.png']}"
+                f"&unlike_upload={token}&expand=2&layer=combined&k=40").get_json()
+    assert [q["id"] for q in res["query"]["examples"]] == [a, b, None]  # items first, then uploads
+    assert res["query"]["upload"] is None and res["query"]["examples"][2]["upload"] == token
+    assert [q["id"] for q in res["query"]["like"]] == [moon] and len(res["query"]["unlike"]) == 2
+    assert res["layer"] == "combined" and set(res["weights"]) == {"parts", "objects"}
+    assert res["query"]["rule"]["name"] == "rocchio" and res["query"]["expand"]["n"] == 2
+    assert {a, b}.isdisjoint(x["id"] for x in res["results"]) and "layers" in res["results"][0]
+    for bad, words in (("item=1&item=x", "whole number"), (f"item={a}&expand=51", "between"),
+                       (f"item={a}&layer=everything", "unknown layer"), ("&".join(["item=1"] * 51), "at most")):
+        r = c.get(f"/api/search?{bad}")
+        assert r.status_code == 400 and words in r.get_json()["error"], bad
+
+
 def test_items_folders_info_and_media(client):
     c, folder = client
     info = c.get("/api/info").get_json()

@@ -5,13 +5,14 @@ from pathlib import Path
 
 from flask import Blueprint, Response, jsonify, request, url_for
 
-from index.api import ArchiveError, DecodeError, item_date
+from index.api import COMBINED, ArchiveError, DecodeError, item_date
 
 from . import params
 from .archive_access import holder
 
 bp = Blueprint("api", __name__, url_prefix="/api")
 OPENAPI = Path(__file__).with_name("openapi.json")
+UPLOADS = 10  # uploads per search, each run through the network (item ids are read from the stores: 50)
 
 
 @bp.errorhandler(params.BadRequest)
@@ -28,7 +29,7 @@ def _archive_error(exc):
 
 def _summary(row: dict) -> dict:
     keys = ("id", "path", "name", "folder", "width", "height", "size", "mtime", "date", "captured_at", "camera",
-            "title", "keywords", "format", "score")
+            "title", "keywords", "format", "score", "layers")
     out = {k: row[k] for k in keys if k in row}
     if "date" not in out and "mtime" in row:
         out["date"] = item_date(row)  # catalog rows (items, explain's match) get it as search results do
@@ -124,19 +125,44 @@ def upload_query():
 
 @bp.route("/search", methods=["GET", "POST"])
 def search():
+    """One example (file, upload=TOKEN or item=ID) as before, or several: upload= and item= repeated, with
+    like_item= / unlike_item= / unlike_upload= marks (Rocchio's rule, docs/retrieval.md) and expand=N."""
     h = holder()
-    query, token = _query(keep=True)
+    examples, tokens = _examples()
+    like = params.integers("like_item")
+    unlike = [*params.integers("unlike_item"),
+              *(h.recall(t).image() for t in params.texts("unlike_upload", 40, most=UPLOADS))]
     k = params.integer("k", 24, 1, 500)
     offset = params.integer("offset", 0, 0, 100_000)
+    expand = params.integer("expand", 0, 0, 50)
     with h.lock:
         h.archive.refresh()
         result = h.archive.search(
-            query, layer=params.layer(h.archive.layer_names), k=k, offset=offset, box=params.box(),
-            folder=params.text("folder", 4096), date_from=params.date("date_from"), date_to=params.date("date_to"),
+            examples[0] if len(examples) == 1 else examples, layer=params.layer(h.archive.layer_names + [COMBINED]),
+            k=k, offset=offset, box=params.box(), folder=params.text("folder", 4096), date_from=params.date("date_from"),
+            date_to=params.date("date_to"), like=like, unlike=unlike, expand=expand,
         )
-    result["query"]["upload"] = token
+    result["query"]["upload"] = tokens[0]  # the first example's (None for an item)
+    for q, token in zip(result["query"].get("examples", []), tokens):
+        q["upload"] = token
     result["results"] = [_summary(r) for r in result["results"]]
     return jsonify(result)
+
+
+def _examples():
+    """The request's query examples, in order: a posted file, then item=ID, then upload=TOKEN (repeatable;
+    the page adds more images to an item query as uploads). The box crops the first. Returns (examples,
+    their upload tokens or None)."""
+    h = holder()
+    files, tokens, items = [], params.texts("upload", 40, most=UPLOADS), params.integers("item")
+    if "file" in request.files:
+        files = [h.remember(_decode_upload())]
+    found = [(h.recall(t), t) for t in files] + [(i, None) for i in items] + [(h.recall(t), t) for t in tokens]
+    if not found:
+        raise params.BadRequest("give a query: upload a file, or pass upload=TOKEN or item=ID")
+    box = params.box()
+    examples = [q.image(box if n == 0 else None) if t else q for n, (q, t) in enumerate(found)]
+    return examples, [t for _, t in found]
 
 
 @bp.get("/explain")
@@ -147,8 +173,12 @@ def explain():
     if match is None:
         raise params.BadRequest("give match=ID, the result to explain")
     mode = params.text("mode", 20) or "centred"  # Archive.explain refuses modes it does not know (400)
+    layer = params.layer(h.archive.layer_names + [COMBINED])
+    if layer == COMBINED:
+        raise params.BadRequest("an explanation is made on one layer at a time: choose a single layer to see "
+                                "why an item matched")
     with h.lock:
-        out = h.archive.explain(query, match, layer=params.layer(h.archive.layer_names), box=params.box(), mode=mode)
+        out = h.archive.explain(query, match, layer=layer, box=params.box(), mode=mode)
         match_row = h.archive.item(match)
     for channel in out["channels"]:
         for e in channel["exemplars"]:

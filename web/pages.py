@@ -7,7 +7,7 @@ from datetime import datetime, timezone
 from flask import Blueprint, render_template
 from markupsafe import Markup, escape
 
-from index.api import ArchiveError, size_text
+from index.api import COMBINED_WEIGHTS, ArchiveError, size_text
 
 from .archive_access import holder
 
@@ -52,7 +52,9 @@ def home():
     with h.lock:
         h.archive.refresh()
         info = h.archive.info()
-    return render_template("search.html", info=info)
+    names = {l["name"] for l in info["layers"]}
+    combined = COMBINED_WEIGHTS if set(COMBINED_WEIGHTS) <= names else None  # the "combined" choice, its weights
+    return render_template("search.html", info=info, combined=combined)
 
 
 @bp.get("/items/<int:item_id>")

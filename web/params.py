@@ -23,6 +23,26 @@ def integer(name: str, default: int | None = None, lo: int = 0, hi: int = 10**9)
     return value
 
 
+def integers(name: str, most: int = 50) -> list[int]:
+    """Every value of a repeated whole-number parameter (name=1&name=2, or name=1,2), at most `most` of them."""
+    raw = [v for value in request.values.getlist(name) for v in value.split(",") if v != ""]
+    if len(raw) > most:
+        raise BadRequest(f"{name} may be given at most {most} times")
+    if not all(re.fullmatch(r"\d{1,18}", v) for v in raw):
+        raise BadRequest(f"every {name} must be a whole number")
+    return [int(v) for v in raw]
+
+
+def texts(name: str, max_len: int = 200, most: int = 50) -> list[str]:
+    """Every non-empty value of a repeated text parameter (name=a&name=b, or name=a,b), at most `most` of them."""
+    raw = [v for value in request.values.getlist(name) for v in value.split(",") if v]
+    if len(raw) > most:
+        raise BadRequest(f"{name} may be given at most {most} times")
+    if any(len(v) > max_len or "\x00" in v for v in raw):
+        raise BadRequest(f"{name} is too long or holds forbidden characters")
+    return raw
+
+
 def box(name: str = "box") -> list[float] | None:
     raw = request.values.get(name)
     if not raw:

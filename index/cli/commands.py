@@ -167,39 +167,61 @@ def _print_notes(report: dict, db: str) -> None:
                    f"`kinscope roots forget {root} --db {db}`", err=True)
 
 
-@main.command(short_help="Find the items most like an image file or an indexed item.")
-@click.argument("image", required=False, type=click.Path(dir_okay=False))
+@main.command(short_help="Find the items most like image files or indexed items (one or several).")
+@click.argument("images", nargs=-1, type=click.Path(dir_okay=False))
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
-@click.option("--id", "item_ids", type=int, multiple=True, help="Search by an indexed item instead of a file (one).")
-@click.option("--layer", help="Layer to compare on (default: the archive's default layer).")
+@click.option("--id", "item_ids", type=int, multiple=True,
+              help="An indexed item as an example (repeat for several; with IMAGES too).")
+@click.option("--unlike", "unlike_images", multiple=True, type=click.Path(dir_okay=False),
+              help="An image the results should NOT look like (repeatable).")
+@click.option("--unlike-id", "unlike_ids", type=int, multiple=True, help="An indexed item as such a counter-example.")
+@click.option("--expand", default=0, show_default=True, type=click.IntRange(0, 50),
+              help="Query expansion: also search with the N best results (alpha-QE).")
+@click.option("--layer", help="Layer to compare on, or 'combined' (several layers' similarities with weights; "
+              "default: the archive's default layer).")
 @click.option("-k", default=10, show_default=True, type=click.IntRange(1, 10000), help="How many results.")
-@click.option("--box", help="Search by a region only: x0,y0,x1,y1 as fractions of the image (0..1).")
+@click.option("--box", help="Search by a region of the first example only: x0,y0,x1,y1 as fractions (0..1).")
 @click.option("--folder", help="Only results below this folder: a path, or a folder as the page lists it (below "
               "the archive's top folder, e.g. 2024-spring).")
 @click.option("--json", "as_json", is_flag=True,
               help="Print JSON: {query, layer, results: [{id, path, score, width, height}]}.")
-def search(image, db, item_ids, layer, k, box, folder, as_json):
-    """Find the items most like IMAGE (any file) or like indexed item --id N."""
-    if len(item_ids) > 1:
-        _fail(click.UsageError(f"give one --id: a search has one query (got {', '.join(map(str, item_ids))})"))
-    item_id = item_ids[0] if item_ids else None
-    if (image is None) == (item_id is None):
-        _fail(click.UsageError("give either IMAGE or --id N"))
+def search(images, db, item_ids, unlike_images, unlike_ids, expand, layer, k, box, folder, as_json):
+    """Find the items most like IMAGES (any files) and/or indexed items --id N.
+
+    Several examples and counter-examples (--unlike, --unlike-id) are combined by Rocchio's rule on the
+    descriptors (docs/retrieval.md); example items are left out of the results."""
+    examples = list(images) + list(item_ids)
+    if not examples:
+        _fail(click.UsageError("give an IMAGE or --id N (or several)"))
     try:
         region = [float(v) for v in box.split(",")] if box else None
         if region is not None and len(region) != 4:
             raise ValueError
     except ValueError:
         _fail(click.UsageError("--box takes four fractions: x0,y0,x1,y1"))
-    result = on_archive(db, lambda archive: archive.search(item_id if item_id is not None else image, layer=layer,
-                                                           k=k, box=region, folder=_folder(archive, folder)))
+    query = examples[0] if len(examples) == 1 else examples
+    result = on_archive(db, lambda archive: archive.search(query, layer=layer, k=k, box=region,
+                                                           folder=_folder(archive, folder),
+                                                           unlike=list(unlike_images) + list(unlike_ids),
+                                                           expand=expand))
     if as_json:
         keys = ("id", "path", "score", "width", "height")
-        result = {key: result[key] for key in ("query", "layer")} | {
+        result = {key: result[key] for key in ("query", "layer", "weights") if key in result} | {
             "results": [{key: r[key] for key in keys} for r in result["results"]]}
         click.echo(json.dumps(result, indent=2))
         return
-    click.echo(f"layer {result['layer']}; score = cosine similarity (1.0 = identical descriptor)")
+    click.echo(f"layer {result['layer']}; score = cosine similarity (1.0 = identical descriptor)"
+               if "weights" not in result else
+               "layers combined: score = " + " + ".join(f"{w:g} x {n}" for n, w in result["weights"].items())
+               + " cosine similarity")
+    q = result["query"]
+    if "examples" in q:
+        rule = q["rule"]
+        click.echo(f"{len(q['examples'])} example(s), {len(q['unlike'])} counter-example(s) combined by Rocchio's rule "
+                   f"(alpha {rule['alpha']:g}, gamma {rule['gamma']:g}; docs/retrieval.md)")
+    if "expand" in q:
+        n, power = q["expand"]["n"], q["expand"]["power"]
+        click.echo(f"query expanded with the {n} best results (alpha-QE, power {power:g})")
     for rank, r in enumerate(result["results"], 1):
         click.echo(f"{rank:3d}  {r['score']:.4f}  {r['width']}x{r['height']}  id {r['id']:<6d} {r['path']}")
 

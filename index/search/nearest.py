@@ -20,23 +20,25 @@ def nearest(
     vector: np.ndarray,
     k: int,
     *,
-    exclude: int | None = None,
+    exclude=None,
     offset: int = 0,
     accept: Callable[[dict], bool] | None = None,
 ) -> tuple[list[dict], bool]:
     """Results offset..offset+k for one descriptor, and whether more exist.
 
-    Ids not (yet) committed in the catalog and rows the filter rejects are skipped; FAISS is asked
-    for more neighbours until enough rows pass (never more than the store holds).
+    Ids not (yet) committed in the catalog, `exclude` (an id or a collection of ids) and rows the filter
+    rejects are skipped; FAISS is asked for more neighbours until enough rows pass (never more than the
+    store holds).
     """
+    skip = {int(exclude)} if isinstance(exclude, (int, np.integer)) else {int(i) for i in exclude or ()}
     (d,) = vector.shape
     want = offset + k + 1  # one extra tells whether there is a next page
     fetch = want
     while True:
         scores, ids = store.search(vector[None, :], fetch)
-        pairs = [(int(i), float(s)) for i, s in zip(ids[0], scores[0]) if i >= 0 and i != exclude]
+        pairs = [(int(i), float(s)) for i, s in zip(ids[0], scores[0]) if i >= 0 and int(i) not in skip]
         rows = catalog.get([i for i, _ in pairs])
-        results = [_result(rows[i], s) for i, s in pairs if i in rows and (accept is None or accept(rows[i]))]
+        results = [as_result(rows[i], s) for i, s in pairs if i in rows and (accept is None or accept(rows[i]))]
         if len(results) >= want or fetch >= len(store):
             return results[offset : offset + k], len(results) > offset + k
         fetch = min(len(store), fetch * 4 + 16)
@@ -70,7 +72,8 @@ def item_date(row: dict) -> str:
     return datetime.fromtimestamp(row["mtime"] or 0, timezone.utc).strftime("%Y-%m-%d")
 
 
-def _result(row: dict, score: float) -> dict:
+def as_result(row: dict, score: float) -> dict:
+    """A search result: the row's public keys, its score (6 decimals) and its date."""
     out = {key: row.get(key) for key in RESULT_KEYS}
     out["score"] = round(score, 6)
     out["date"] = item_date(row)

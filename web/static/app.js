@@ -4,6 +4,7 @@ import { ApiError, api, breakable, el, query, resultCard, setRoot, shortFolder, 
 import { setUpCautions } from "./cautions.js";
 import { setUpPicker } from "./picker.js";
 import { clearExplanation, renderExplanation } from "./explain.js";
+import { createExtras, createMarks } from "./feedback.js";
 
 const PAGE = 24;
 const MIN_REGION = 0.04; // a region narrower than this (fraction of the image) is taken as a stray click
@@ -50,6 +51,8 @@ const explainTitle = $("explain-title");
 const explainBody = $("explain-body");
 const browserDialog = $("browser-dialog");
 const browserFolder = $("browser-folder");
+const marks = createMarks($("marks-panel"), () => runSearch()); // like/unlike marks (feedback.js)
+const extras = createExtras($("extra-examples"), () => runSearch()); // more example images (feedback.js)
 
 // --- query ----------------------------------------------------------------------------------
 function queryParams() {
@@ -67,6 +70,8 @@ function setQuery(q) {
   state.query = q;
   state.box = null;
   state.explainCache.clear();
+  marks.clear();
+  extras.clear();
   showMessage(queryError, "");
   queryView.hidden = false;
   dropzone.classList.add("is-compact");
@@ -328,18 +333,23 @@ async function runSearch({ append = false, reveal = false } = {}) {
   moreButton.setAttribute("aria-disabled", "true");
   statusLine.textContent = append ? "Loading more results…" : "Searching…";
   try {
-    const r = await api("/api/search", { ...queryParams(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
+    const r = await api("/api/search", { ...extras.params(queryParams()), ...marks.params(), layer: state.layer, box: state.box, k: PAGE, offset, ...f });
     if (seq !== state.seq) return; // a newer search has started
     if (!append) {
       state.results = [];
       resultsList.replaceChildren();
+      marks.forgetCards();
     }
     const first = state.results.length;
     state.results.push(...r.results);
     state.more = r.more;
     resultsList.dataset.layer = r.layer;
     resultsList.dataset.box = r.query.box ? r.query.box.map((v) => v.toFixed(3)).join(",") : "";
-    r.results.forEach((res, i) => resultsList.append(resultCard(res, first + i + 1, { onExplain: openExplanation, onUse: useItem })));
+    r.results.forEach((res, i) => {
+      const card = resultCard(res, first + i + 1, { onExplain: openExplanation, onUse: useItem });
+      marks.decorate(card, res);
+      resultsList.append(card);
+    });
     const moreHadFocus = document.activeElement === moreButton;
     moreButton.hidden = !r.more;
     describeResults();
