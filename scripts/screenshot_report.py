@@ -1,10 +1,11 @@
 """Screenshots of the static duplicate report for docs/ (Playwright driving Debian's /usr/bin/chromium).
 
 The docs' pictures were made from the demo archive copied to a neutral folder, so that no worktree path shows:
+    python scripts/demo_dates.py demo_archive   # the dates recorded in key.csv
     cp -a demo_archive /tmp/tansyford/pattern-library
     kinscope index /tmp/tansyford/pattern-library --db /tmp/tansyford/kinscope-db
     kinscope duplicates --db /tmp/tansyford/kinscope-db --report /tmp/tansyford/duplicates.html -q > /dev/null
-    python scripts/screenshot_report.py /tmp/tansyford/duplicates.html --group 19
+    python scripts/screenshot_report.py /tmp/tansyford/duplicates.html --group 13
 It writes docs/screenshot-report.png (the top of the page) and docs/screenshot-report-group.png (one group).
 Look at both before committing them.
 """
