@@ -76,3 +76,26 @@ def test_another_example_image_joins_the_query_and_can_be_removed(page):
     with page.expect_response(lambda r: "/api/search" in r.url and "%2C" not in r.url) as resp:
         page.click("#extra-list button")
     assert "examples" not in resp.value.json()["query"] and page.locator("#extra-list li").count() == 0
+
+
+def test_a_match_of_several_examples_is_explained_against_each_of_them(page):
+    """With an added example, the explanation offers a choice of example: the first explains the match
+    against the query image, the second against the added one (its own upload token and image)."""
+    _open(page)
+    _upload(page)
+    with page.expect_response(lambda r: "/api/search" in r.url and "%2C" in r.url):
+        page.set_input_files("#extra-input", str(DEMO / "rescans-2026/scan-0002.jpg"))
+    page.wait_for_selector("#extra-list li")
+    extra_token = page.locator("#extra-list li").get_attribute("data-upload")
+    with page.expect_response(lambda r: "/api/explain" in r.url) as first:
+        page.locator("#results li.result .result-main").first.click()
+    assert extra_token not in first.value.url  # the query image itself
+    chooser = page.locator("#explain-example")
+    chooser.wait_for()
+    assert chooser.locator("option").count() == 2 and "scan-0002.jpg" in chooser.inner_text()
+    with page.expect_response(lambda r: "/api/explain" in r.url) as second:
+        chooser.select_option("1")
+    assert f"upload={extra_token}" in second.value.url and second.value.ok
+    page.wait_for_selector("#channel-list li.channel")
+    assert page.locator("#explain-example").input_value() == "1"
+    assert "scan-0002.jpg" in page.inner_text("#explain-body")

@@ -412,13 +412,29 @@ function updateURL() {
 // --- explanation ----------------------------------------------------------------------------
 let explainOpener = null;
 
-async function openExplanation(result) {
-  explainOpener = document.activeElement;
+// With several example images, a match is explained against one example at a time (a combined query
+// has no image of its own); `which` picks it: 0 = the query, 1.. = the added examples.
+function exampleChooser(result, which) {
+  const examples = extras.list();
+  if (!examples.length) return null;
+  const names = [state.query.label || "the query image", ...examples.map((x) => x.name)];
+  const select = el("select", { id: "explain-example", "aria-label": "Explain against which example" },
+    ...names.map((name, i) => el("option", { value: String(i), text: `${i + 1}. ${name}`, selected: i === which })));
+  select.addEventListener("change", () => openExplanation(result, Number(select.value)));
+  return el("p", { class: "explain-example" },
+    el("label", { for: "explain-example", text: "Explained against example " }), select,
+    el("span", { class: "fine", text: ` (the search combined ${names.length} examples; each is explained on its own)` }));
+}
+
+async function openExplanation(result, which = 0) {
+  explainOpener = explainOpener && explainDialog.open ? explainOpener : document.activeElement;
   explainTitle.replaceChildren("Why ", ...breakable(result.name), " matched");
   clearExplanation(explainBody);
   explainBody.append(el("p", { class: "loading", role: "status", text: "Working out where the similarity comes from…" }));
   if (!explainDialog.open) explainDialog.showModal();
-  const params = { ...queryParams(), match: result.id, layer: state.layer, box: state.box };
+  const extra = which > 0 ? extras.list()[which - 1] : null;
+  const params = extra ? { upload: extra.upload, match: result.id, layer: state.layer }
+    : { ...queryParams(), match: result.id, layer: state.layer, box: state.box };
   const key = query(params);
   try {
     let data = state.explainCache.get(key);
@@ -429,17 +445,20 @@ async function openExplanation(result) {
     if (!explainDialog.open) return;
     const layer = state.layers[data.layer] || {};
     renderExplanation(explainBody, data, {
-      queryImage: state.query.image,
-      queryLabel: state.query.label,
-      box: state.box,
+      queryImage: extra ? extra.image : state.query.image,
+      queryLabel: extra ? extra.name : state.query.label,
+      box: extra ? null : state.box,
       layer: data.layer,
       layerHint: layer.hint,
       channels: layer.channels,
       onUse: useItem,
     });
+    const chooser = exampleChooser(result, which);
+    if (chooser) explainBody.prepend(chooser);
   } catch (err) {
     clearExplanation(explainBody);
-    explainBody.append(el("p", { class: "message message-error", role: "alert", text: err.message }));
+    const chooser = exampleChooser(result, which);
+    explainBody.append(...(chooser ? [chooser] : []), el("p", { class: "message message-error", role: "alert", text: err.message }));
   }
 }
 

@@ -200,5 +200,10 @@ export function createExtras(box, onChange) {
     draw();
   }
 
-  return { params, clear, get size() { return extras.length; } };
+  /** The extra examples, for explaining a match against each of them: [{upload, image, name}]. */
+  function list_() {
+    return extras.map((x) => ({ ...x }));
+  }
+
+  return { params, clear, list: list_, get size() { return extras.length; } };
 }
