@@ -167,7 +167,7 @@ def _print_notes(report: dict, db: str) -> None:
                    f"`kinscope roots forget {root} --db {db}`", err=True)
 
 
-@main.command(short_help="Find the items most like image files or indexed items (one or several).")
+@main.command(short_help="Find the items most like one or several examples.")
 @click.argument("images", nargs=-1, type=click.Path(dir_okay=False))
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--id", "item_ids", type=int, multiple=True,
