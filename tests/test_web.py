@@ -282,3 +282,19 @@ def test_items_filter_by_part_of_the_name_or_the_id(client):
     some = every[4]
     assert some["id"] in [i["id"] for i in c.get(f"/api/items?name={some['id']}").get_json()["items"]]
     assert c.get("/api/items?name=" + "x" * 256).status_code == 400
+
+
+def test_an_explanation_asked_for_the_combined_choice_is_made_on_its_first_layer(sample_archive):
+    """The combined choice adds layers' similarities; an explanation splits one layer's score, so it is made on
+    the combination's first layer and says so (it used to answer 400)."""
+    from index.api import COMBINED_WEIGHTS
+
+    archive, _ = sample_archive
+    c = create_app({"KINSCOPE_DB": str(archive.db), "TESTING": True}).test_client()
+    first = next(n for n in COMBINED_WEIGHTS if n in archive.layer_names)
+    item = c.get("/api/items?limit=1").get_json()["items"][0]["id"]
+    hit = c.get(f"/api/search?item={item}&k=2&layer=combined").get_json()["results"][0]
+    r = c.get(f"/api/explain?item={item}&match={hit['id']}&layer=combined")
+    assert r.status_code == 200, r.get_json()
+    doc = r.get_json()
+    assert doc["layer"] == first and first in doc["note"] and "combined" in doc["note"]

@@ -5,7 +5,7 @@ from pathlib import Path
 
 from flask import Blueprint, Response, jsonify, request, url_for
 
-from index.api import COMBINED, ArchiveError, DecodeError, item_date
+from index.api import COMBINED, COMBINED_WEIGHTS, ArchiveError, DecodeError, item_date
 
 from . import params
 from .archive_access import holder
@@ -174,9 +174,13 @@ def explain():
         raise params.BadRequest("give match=ID, the result to explain")
     mode = params.text("mode", 20) or "centred"  # Archive.explain refuses modes it does not know (400)
     layer = params.layer(h.archive.layer_names + [COMBINED])
-    if layer == COMBINED:
-        raise params.BadRequest("an explanation is made on one layer at a time: choose a single layer to see "
-                                "why an item matched")
+    note = None
+    if layer == COMBINED:  # an explanation splits one layer's score: the first layer of the combination
+        layer = next((name for name in COMBINED_WEIGHTS if name in h.archive.layer_names), None)
+        if layer is None:
+            raise params.BadRequest("an explanation is made on one layer at a time: choose a single layer")
+        note = (f"The search combined layers ({', '.join(f'{w:g} x {n}' for n, w in COMBINED_WEIGHTS.items())}); "
+                f"an explanation splits one layer's score, so this one is on {layer}.")
     with h.lock:
         out = h.archive.explain(query, match, layer=layer, box=params.box(), mode=mode)
         match_row = h.archive.item(match)
@@ -185,6 +189,8 @@ def explain():
             e["patch"] = url_for("media.patch", item_id=e["id"], box=",".join(f"{v:.4f}" for v in e["box"]))
     out["match"] = _summary({**out["match"], **match_row})
     out["query"] = {"upload": token, "item": query if isinstance(query, int) else None, "box": params.box()}
+    if note:
+        out["note"] = note
     return jsonify(out)
 
 

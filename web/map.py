@@ -45,7 +45,7 @@ def chunk():
         layer = params.layer(h.archive.layer_names) or h.archive.manifest["default_layer"]
         view = h.archive.map_view(layer)
     if view is None:
-        return jsonify(error=f"there is no map of layer {layer} yet: run `kinscope map --db DIR --layer {layer}` "
+        return jsonify(error=f"there is no map of layer {layer} yet: run `kinscope map --db {h.archive.db} --layer {layer}` "
                              "(it lays the archive out once; later runs only place new items)"), 404
     layout = view["layout"]
     total = len(layout.ids)

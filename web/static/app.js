@@ -420,13 +420,13 @@ function exampleChooser(result, which) {
   const names = [state.query.label || "the query image", ...examples.map((x) => x.name)];
   const select = el("select", { id: "explain-example", "aria-label": "Explain against which example" },
     ...names.map((name, i) => el("option", { value: String(i), text: `${i + 1}. ${name}`, selected: i === which })));
-  select.addEventListener("change", () => openExplanation(result, Number(select.value)));
+  select.addEventListener("change", () => openExplanation(result, Number(select.value), true));
   return el("p", { class: "explain-example" },
     el("label", { for: "explain-example", text: "Explained against example " }), select,
     el("span", { class: "fine", text: ` (the search combined ${names.length} examples; each is explained on its own)` }));
 }
 
-async function openExplanation(result, which = 0) {
+async function openExplanation(result, which = 0, refocus = false) {
   explainOpener = explainOpener && explainDialog.open ? explainOpener : document.activeElement;
   explainTitle.replaceChildren("Why ", ...breakable(result.name), " matched");
   clearExplanation(explainBody);
@@ -453,8 +453,10 @@ async function openExplanation(result, which = 0) {
       channels: layer.channels,
       onUse: useItem,
     });
+    if (data.note) explainBody.prepend(el("p", { class: "fine explain-note", text: data.note }));
     const chooser = exampleChooser(result, which);
     if (chooser) explainBody.prepend(chooser);
+    if (chooser && refocus) $("explain-example").focus(); // the chooser was redrawn: keep the keyboard on it
   } catch (err) {
     clearExplanation(explainBody);
     const chooser = exampleChooser(result, which);

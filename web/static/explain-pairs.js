@@ -23,7 +23,7 @@ function placementText(data) {
 
 /** The region pairs, with a stepper: Previous / Next buttons, arrow keys on the list, Home and End. */
 export function pairSection(data, pairs, what, highlight) {
-  const list = el("ol", { class: "pair-list", id: "pair-list", "aria-label": "Region pairs, strongest first" });
+  const list = el("ol", { class: "pair-list", id: "pair-list", "aria-label": "Region pairs, in the order the geometric check ranks them" });
   const position = el("span", { class: "pair-position", id: "pair-position", role: "status", "aria-live": "polite" });
   const items = [];
   let current = null; // index into pairs, or null for all

@@ -29,7 +29,9 @@ export function setUpPicker(onPick) {
   }
 
   function describe() {
-    const filtered = name.value.trim() ? ` whose name holds “${name.value.trim()}”` : "";
+    const text = name.value.trim();
+    const byId = /^\d+$/.test(text) ? ` or whose id is ${text}` : "";
+    const filtered = text ? ` whose name holds “${text}”${byId}` : "";
     if (!state.total) return `No items${filtered}${folder.value ? " in this folder" : ""}.`;
     return `Showing ${state.offset.toLocaleString()} of ${state.total.toLocaleString()} items${filtered}. `
       + "Select one to search with it; the arrow keys move between them.";
