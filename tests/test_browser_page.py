@@ -34,9 +34,16 @@ def page(browser, server):  # noqa: F811 (the fixtures above are pytest's, impor
     assert not problems, problems
 
 
-def _in_view(page, selector) -> bool:
-    return page.locator(selector).first.evaluate(
-        "e => { const r = e.getBoundingClientRect(); return r.top >= 0 && r.top < window.innerHeight - 40; }")
+def _in_view(page, selector, wait_ms: int = 3000) -> bool:
+    """Whether the element's top is inside the window, allowing the page up to wait_ms to get it there (a
+    loaded machine renders the results and scrolls a little later than the results list appears)."""
+    check = "s => { const e = document.querySelector(s); if (!e) return false; const r = e.getBoundingClientRect(); " \
+            "return r.top >= 0 && r.top < window.innerHeight - 40; }"
+    try:
+        page.wait_for_function(check, arg=selector, timeout=wait_ms)
+        return True
+    except Exception:  # noqa: BLE001 - playwright's TimeoutError: not in view within the time
+        return False
 
 
 def test_show_more_by_keyboard_keeps_the_focus_on_the_first_new_result(page):
