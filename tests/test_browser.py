@@ -11,14 +11,12 @@ import csv
 import json
 import os
 import shutil
-import subprocess
-import sys
-import time
-import urllib.error
 import urllib.request
 from pathlib import Path
 
 import pytest
+
+from tests.serving import serving
 
 CHROMIUM = Path("/usr/bin/chromium")
 if not CHROMIUM.exists():
@@ -62,37 +60,13 @@ def demo_subset(tmp_path_factory):
 def server(demo_subset, tmp_path_factory):
     """`kinscope serve` on a free 127.0.0.1 port over a freshly indexed archive; stopped at the end."""
     from index.api import Archive
-    from web.serve import free_port
 
     root, _ = demo_subset
     db = tmp_path_factory.mktemp("browser-db") / "db"
     with Archive.open(db, create=True) as archive:
         archive.add([root], progress=False)
-    port = free_port("127.0.0.1")
-    log = open(db / "serve.log", "w")
-    proc = subprocess.Popen([sys.executable, "-m", "index", "serve", "--db", str(db), "--host", "127.0.0.1",
-                             "--port", str(port)], stdout=log, stderr=subprocess.STDOUT, cwd=REPO)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        for _ in range(600):  # the server imports torch and opens the archive first
-            if proc.poll() is not None:
-                raise RuntimeError(f"kinscope serve exited: {(db / 'serve.log').read_text()}")
-            try:
-                with urllib.request.urlopen(base + "/api/info", timeout=2) as r:
-                    if r.status == 200:
-                        break
-            except (urllib.error.URLError, ConnectionError, OSError):
-                time.sleep(0.2)
-        else:
-            raise RuntimeError("kinscope serve did not answer")
+    with serving(db, db / "serve.log") as base:
         yield base
-    finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-        log.close()
 
 
 @pytest.fixture(scope="module")

@@ -12,16 +12,13 @@ from __future__ import annotations
 import hashlib
 import json
 import re
-import subprocess
-import sys
-import time
-import urllib.error
-import urllib.request
 from pathlib import Path
 
 import pytest
 from click.testing import CliRunner
 from PIL import ImageEnhance, ImageOps
+
+from tests.serving import serving
 
 CHROMIUM = Path("/usr/bin/chromium")
 if not CHROMIUM.exists():
@@ -42,7 +39,6 @@ def snapshot(root: Path) -> dict:
 @pytest.fixture(scope="module")
 def review_server(tmp_path_factory, sample_images):
     from index.api import Archive
-    from web.serve import free_port
 
     root = tmp_path_factory.mktemp("dupbrowser") / "photos"
     (root / "scans").mkdir(parents=True)
@@ -60,31 +56,8 @@ def review_server(tmp_path_factory, sample_images):
     db = root.parent / "db"
     with Archive.open(db, create=True, layers=["objects"]) as archive:
         archive.add([root], progress=False)
-    port = free_port("127.0.0.1")
-    log = open(root.parent / "serve.log", "w")
-    proc = subprocess.Popen([sys.executable, "-m", "index", "serve", "--db", str(db), "--host", "127.0.0.1",
-                             "--port", str(port)], stdout=log, stderr=subprocess.STDOUT, cwd=REPO)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        for _ in range(600):
-            if proc.poll() is not None:
-                raise RuntimeError(f"kinscope serve exited: {(root.parent / 'serve.log').read_text()}")
-            try:
-                with urllib.request.urlopen(base + "/api/info", timeout=2) as r:
-                    if r.status == 200:
-                        break
-            except (urllib.error.URLError, ConnectionError, OSError):
-                time.sleep(0.2)
-        else:
-            raise RuntimeError("kinscope serve did not answer")
+    with serving(db, root.parent / "serve.log") as base:
         yield base, root, db
-    finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-        log.close()
 
 
 @pytest.fixture

@@ -10,16 +10,13 @@ JSON download.
 from __future__ import annotations
 
 import json
-import subprocess
-import sys
-import time
-import urllib.error
 import urllib.request
 from pathlib import Path
 
 import pytest
 
 from tests.map_families import write_families
+from tests.serving import serving
 
 CHROMIUM = Path("/usr/bin/chromium")
 if not CHROMIUM.exists():
@@ -36,7 +33,6 @@ ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-net
 @pytest.fixture(scope="module")
 def server(tmp_path_factory, sample_images):
     from index.api import Archive
-    from web.serve import free_port
 
     root = tmp_path_factory.mktemp("browser-map")
     write_families(root / "photos", sample_images)
@@ -44,31 +40,8 @@ def server(tmp_path_factory, sample_images):
     with Archive.open(db, create=True, layers=["parts"]) as archive:
         archive.add([root / "photos"], progress=False)
         archive.map()
-    port = free_port("127.0.0.1")
-    log = open(root / "serve.log", "w")
-    proc = subprocess.Popen([sys.executable, "-m", "index", "serve", "--db", str(db), "--host", "127.0.0.1",
-                             "--port", str(port)], stdout=log, stderr=subprocess.STDOUT, cwd=REPO)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        for _ in range(600):
-            if proc.poll() is not None:
-                raise RuntimeError(f"kinscope serve exited: {(root / 'serve.log').read_text()}")
-            try:
-                with urllib.request.urlopen(base + "/api/info", timeout=2) as r:
-                    if r.status == 200:
-                        break
-            except (urllib.error.URLError, ConnectionError, OSError):
-                time.sleep(0.2)
-        else:
-            raise RuntimeError("kinscope serve did not answer")
+    with serving(db, root / "serve.log") as base:
         yield base
-    finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-        log.close()
 
 
 @pytest.fixture(scope="module")
