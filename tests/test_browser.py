@@ -238,6 +238,38 @@ def test_drawing_a_region_reruns_the_search_with_that_box(page):
     assert "whole image" in page.inner_text("#region-state")
 
 
+def test_region_typed_with_the_keyboard_and_kept_in_the_address(page):
+    _open(page)
+    page.click("#browse-button")
+    page.locator("#browser-grid li button").first.click()
+    page.wait_for_selector("#results li.result")
+    page.click(".region-numbers summary")
+    # A box with left >= right is refused in words, and no search is sent.
+    page.fill('#region-form input[name="x0"]', "60")
+    page.fill('#region-form input[name="x1"]', "40")
+    page.click('#region-form button[type="submit"]')
+    assert "left < right" in page.inner_text("#query-error")
+    assert page.get_attribute("#region-canvas", "data-box") == ""
+    with page.expect_response(lambda r: "/api/search" in r.url and "box=" in r.url):
+        page.fill('#region-form input[name="x0"]', "20")
+        page.fill('#region-form input[name="y0"]', "10")
+        page.fill('#region-form input[name="x1"]', "70")
+        page.fill('#region-form input[name="y1"]', "90")
+        page.click('#region-form button[type="submit"]')
+    page.wait_for_selector('#results:not([data-box=""])', state="attached")
+    assert page.get_attribute("#region-canvas", "data-box") == "0.200,0.100,0.700,0.900"
+    assert "50% × 80%" in page.inner_text("#region-state")
+    assert "box=0.2" in page.url
+    # The address brings the same region back in a new page.
+    address = page.url
+    page.goto(page.base + "/")
+    page.goto(address)
+    page.wait_for_selector("#app[data-ready=true]")
+    page.wait_for_selector('#results:not([data-box=""])', state="attached")
+    assert page.get_attribute("#region-canvas", "data-box") == "0.200,0.100,0.700,0.900"
+    assert page.input_value('#region-form input[name="x1"]') == "70"
+
+
 def test_layer_chooser_reruns_without_reloading(page):
     _open(page)
     _upload(page)

@@ -5,9 +5,9 @@ import { setUpCautions } from "./cautions.js";
 import { setUpPicker } from "./picker.js";
 import { clearExplanation, renderExplanation } from "./explain.js";
 import { createExtras, createMarks } from "./feedback.js";
+import { setUpRegion } from "./region.js";
 
 const PAGE = 24;
-const MIN_REGION = 0.04; // a region narrower than this (fraction of the image) is taken as a stray click
 
 const $ = (id) => document.getElementById(id);
 const app = $("app");
@@ -32,10 +32,6 @@ const queryError = $("query-error");
 const queryView = $("query-view");
 const queryImage = $("query-image");
 const queryLabel = $("query-label");
-const regionCanvas = $("region-canvas");
-const regionState = $("region-state");
-const regionClear = $("region-clear");
-const regionForm = $("region-form");
 const filterForm = $("filter-form");
 const folderFilter = $("folder-filter");
 const dateFrom = $("date-from");
@@ -79,7 +75,7 @@ function setQuery(q) {
   queryImage.alt = `The query image: ${q.label}`;
   queryLabel.replaceChildren(...breakable(q.label));
   queryImage.src = q.image;
-  updateRegionUI();
+  region.show(null);
   updateURL();
   runSearch({ reveal: true });
 }
@@ -158,118 +154,24 @@ document.addEventListener("paste", (e) => {
   }
 });
 
-// --- region box -----------------------------------------------------------------------------
-let drag = null;
-
-function fraction(e) {
-  const rect = regionCanvas.getBoundingClientRect();
-  return [
-    Math.max(0, Math.min(1, (e.clientX - rect.left) / rect.width)),
-    Math.max(0, Math.min(1, (e.clientY - rect.top) / rect.height)),
-  ];
-}
-
-function ordered(a, b) {
-  return [Math.min(a[0], b[0]), Math.min(a[1], b[1]), Math.max(a[0], b[0]), Math.max(a[1], b[1])];
-}
-
-function drawRegion(box, live = false) {
-  const w = queryImage.clientWidth;
-  const h = queryImage.clientHeight;
-  const dpr = window.devicePixelRatio || 1;
-  regionCanvas.width = Math.round(w * dpr);
-  regionCanvas.height = Math.round(h * dpr);
-  const ctx = regionCanvas.getContext("2d");
-  ctx.clearRect(0, 0, regionCanvas.width, regionCanvas.height);
-  if (!box) return;
-  const W = regionCanvas.width;
-  const H = regionCanvas.height;
-  const [x0, y0, x1, y1] = box;
-  ctx.fillStyle = "rgba(245, 243, 238, 0.7)";
-  ctx.fillRect(0, 0, W, H);
-  ctx.clearRect(x0 * W, y0 * H, (x1 - x0) * W, (y1 - y0) * H);
-  ctx.lineWidth = 4 * dpr;
-  ctx.strokeStyle = "rgba(255, 255, 255, 0.9)";
-  ctx.strokeRect(x0 * W, y0 * H, (x1 - x0) * W, (y1 - y0) * H);
-  ctx.lineWidth = 2 * dpr;
-  ctx.strokeStyle = live ? "#b4530b" : "#285e54";
-  ctx.setLineDash(live ? [6 * dpr, 4 * dpr] : []);
-  ctx.strokeRect(x0 * W, y0 * H, (x1 - x0) * W, (y1 - y0) * H);
-  ctx.setLineDash([]);
-}
-
-function updateRegionUI() {
-  drawRegion(state.box);
-  regionClear.hidden = !state.box;
-  regionCanvas.dataset.box = state.box ? state.box.map((v) => v.toFixed(3)).join(",") : "";
-  if (state.box) {
-    const [x0, y0, x1, y1] = state.box;
-    regionState.textContent = `Searching by the marked region only (${Math.round((x1 - x0) * 100)}% × ${Math.round((y1 - y0) * 100)}% of the image).`;
-    const f = regionForm.elements;
-    f.x0.value = Math.round(x0 * 100);
-    f.y0.value = Math.round(y0 * 100);
-    f.x1.value = Math.round(x1 * 100);
-    f.y1.value = Math.round(y1 * 100);
-  } else {
-    regionState.textContent = "Searching by the whole image.";
-  }
-}
+// --- region box (region.js) ------------------------------------------------------------------
+const region = setUpRegion(
+  { canvas: $("region-canvas"), image: queryImage, status: $("region-state"), clear: $("region-clear"),
+    form: $("region-form"), error: queryError },
+  { hasQuery: () => Boolean(state.query), current: () => state.box, onChange: setBox },
+);
+queryImage.addEventListener("error", () => {
+  if (state.query) showMessage(queryError, "the query image cannot be shown; upload it again.");
+});
 
 function setBox(box) {
   showMessage(queryError, "");
   state.box = box;
   state.explainCache.clear();
-  updateRegionUI();
+  region.show(box);
   updateURL();
   runSearch();
 }
-
-regionCanvas.addEventListener("pointerdown", (e) => {
-  if (!state.query || e.button !== 0) return;
-  e.preventDefault();
-  regionCanvas.setPointerCapture(e.pointerId);
-  const p = fraction(e);
-  drag = { from: p, to: p };
-});
-regionCanvas.addEventListener("pointermove", (e) => {
-  if (!drag) return;
-  drag.to = fraction(e);
-  drawRegion(ordered(drag.from, drag.to), true);
-});
-const endDrag = (e) => {
-  if (!drag) return;
-  drag.to = fraction(e);
-  const box = ordered(drag.from, drag.to);
-  drag = null;
-  if (box[2] - box[0] < MIN_REGION || box[3] - box[1] < MIN_REGION) {
-    updateRegionUI(); // too small to mean anything: keep what was there
-    return;
-  }
-  setBox(box);
-};
-regionCanvas.addEventListener("pointerup", endDrag);
-regionCanvas.addEventListener("pointercancel", () => {
-  drag = null;
-  updateRegionUI();
-});
-new ResizeObserver(() => drawRegion(state.box)).observe(queryImage);
-queryImage.addEventListener("load", () => drawRegion(state.box));
-queryImage.addEventListener("error", () => {
-  if (state.query) showMessage(queryError, "the query image cannot be shown; upload it again.");
-});
-
-regionClear.addEventListener("click", () => setBox(null));
-regionForm.addEventListener("submit", (e) => {
-  e.preventDefault();
-  const f = regionForm.elements;
-  const v = ["x0", "y0", "x1", "y1"].map((k) => Number(f[k].value) / 100);
-  if (v.some((x) => !Number.isFinite(x) || x < 0 || x > 1) || v[0] >= v[2] || v[1] >= v[3]) {
-    showMessage(queryError, "the region needs left < right and top < bottom, each between 0 and 100.");
-    return;
-  }
-  showMessage(queryError, "");
-  setBox(v[0] === 0 && v[1] === 0 && v[2] === 1 && v[3] === 1 ? null : v);
-});
 
 // --- layer and filters ----------------------------------------------------------------------
 document.querySelectorAll('input[name="layer"]').forEach((radio) => {
