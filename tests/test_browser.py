@@ -181,6 +181,16 @@ def test_explanation_opens_with_heat_maps_pairs_and_channels(page):
     assert page.inner_text("#pair-position").startswith(f"Pair {pairs.count()} of")
     page.click("#pair-all")
     assert page.inner_text("#pair-position").startswith("All")
+    # The stepper above the images steps without scrolling them away (focus stays on its button).
+    dialog.locator(".explain-controls").scroll_into_view_if_needed()
+    page.click("#pair-next-top")
+    page.click("#pair-next-top")
+    assert page.inner_text("#pair-quick-position") == f"2 of {pairs.count()}"
+    assert page.inner_text("#pair-position").startswith("Pair 2 of")
+    assert page.evaluate("document.activeElement.id") == "pair-next-top"
+    top = dialog.locator("canvas.heat-match").evaluate("c => c.getBoundingClientRect().top")
+    assert 0 <= top < page.viewport_size["height"] / 2, top
+    page.click("#pair-all")
     channels = dialog.locator("#channel-list li.channel")
     assert channels.count() >= 3 and "Detector" in channels.first.inner_text()
     patch = channels.first.locator(".exemplars img").first

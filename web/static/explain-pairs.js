@@ -21,10 +21,13 @@ function placementText(data) {
   return `${source} ${pl.agreeing} of ${pl.candidates} candidate links agree on one placement: the match shows the query's content ${how.join(", ")}.`;
 }
 
-/** The region pairs, with a stepper: Previous / Next buttons, arrow keys on the list, Home and End. */
+/** The region pairs, with a stepper: Previous / Next buttons, arrow keys on the list, Home and End.
+    Returns {section, quick}: `quick` (null without pairs) is a small stepper for the row above the two
+    images, so that pairs can be stepped through with both images in view (the section lies below them). */
 export function pairSection(data, pairs, what, highlight) {
   const list = el("ol", { class: "pair-list", id: "pair-list", "aria-label": "Region pairs, in the order the geometric check ranks them" });
   const position = el("span", { class: "pair-position", id: "pair-position", role: "status", "aria-live": "polite" });
+  const quickPosition = el("span", { class: "pair-quick-position", id: "pair-quick-position" });
   const items = [];
   let current = null; // index into pairs, or null for all
   const select = (index, focus) => {
@@ -33,16 +36,18 @@ export function pairSection(data, pairs, what, highlight) {
     highlight(index === null ? null : pairs[index].n);
     if (index === null) {
       position.textContent = `All ${pairs.length} pairs shown`;
+      quickPosition.textContent = `all ${pairs.length}`;
     } else {
       const p = pairs[index];
       position.textContent = `Pair ${p.n} of ${pairs.length}: query ${whereIs(p.query)} \u2194 match ${whereIs(p.match)}`;
+      quickPosition.textContent = `${p.n} of ${pairs.length}`;
       if (focus) items[index].focus();
     }
   };
-  const step = (delta) => {
+  const step = (delta, focus = true) => {
     if (!pairs.length) return;
     const next = current === null ? (delta > 0 ? 0 : pairs.length - 1) : (current + delta + pairs.length) % pairs.length;
-    select(next, true);
+    select(next, focus);
   };
   pairs.forEach((p, i) => {
     const item = el(
@@ -82,7 +87,7 @@ export function pairSection(data, pairs, what, highlight) {
   );
   if (!pairs.length) {
     section.append(el("p", { text: "No regions agree on one placement: the two images may share a look (colours, texture) without showing the same thing." }));
-    return section;
+    return { section, quick: null };
   }
   const stepper = el(
     "div",
@@ -93,6 +98,17 @@ export function pairSection(data, pairs, what, highlight) {
     position,
   );
   section.append(stepper, el("p", { class: "fine", text: "On the list, the arrow keys step from pair to pair." }), list);
+  // The quick stepper keeps focus on its own buttons: the page does not scroll to the list below.
+  const quick = el(
+    "span",
+    { class: "pair-quick", role: "group", "aria-label": "Step through the linked regions" },
+    "Linked region",
+    el("button", { type: "button", class: "button button-small", id: "pair-prev-top", "aria-label": "Previous linked region",
+      onclick: () => step(-1, false) }, "\u2190"),
+    quickPosition,
+    el("button", { type: "button", class: "button button-small", id: "pair-next-top", "aria-label": "Next linked region",
+      onclick: () => step(1, false) }, "\u2192"),
+  );
   select(null, false);
-  return section;
+  return { section, quick };
 }

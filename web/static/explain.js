@@ -282,16 +282,15 @@ export function renderExplanation(body, data, ctx) {
     input.addEventListener("change", () => { if (input.checked) switchMode(body, data, ctx, value, modeStatus); });
     modeChoice.append(el("label", { for: `explain-mode-${value}` }, input, label));
   }
-  body.append(
-    el(
-      "div",
-      { class: "explain-controls" },
-      el("label", { for: "toggle-heat" }, heatToggle, "Show heat maps"),
-      el("label", { for: "toggle-pairs" }, pairToggle, "Show linked regions"),
-      modeChoice,
-      modeStatus,
-    ),
+  const controls = el(
+    "div",
+    { class: "explain-controls" },
+    el("label", { for: "toggle-heat" }, heatToggle, "Show heat maps"),
+    el("label", { for: "toggle-pairs" }, pairToggle, "Show linked regions"),
+    modeChoice,
+    modeStatus,
   );
+  body.append(controls);
 
   // The two images.
   const figure = (who, title, subtitle, src, alt) => {
@@ -350,7 +349,9 @@ export function renderExplanation(body, data, ctx) {
 
   const details = el("div", { class: "explain-details" });
   body.append(details);
-  details.append(pairSection(data, pairs, what, (n) => overlays.forEach((o) => { o.active = n; o.draw(); })));
+  const pairUI = pairSection(data, pairs, what, (n) => overlays.forEach((o) => { o.active = n; o.draw(); }));
+  details.append(pairUI.section);
+  if (pairUI.quick) controls.insertBefore(pairUI.quick, modeChoice);
   details.append(channelSection(data, ctx, what));
 
   const actions = el("div", { class: "explain-actions" }, el("a", { class: "button", href: match.page || `/items/${match.id}`, text: "Open the match's page" }));
