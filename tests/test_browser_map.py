@@ -136,6 +136,35 @@ def test_hover_shows_the_item_and_a_click_offers_search_by_it(page, server):
     assert f"item={item_id}" in page.url
 
 
+def test_keyboard_zoom_keeps_the_chosen_image_in_place(page, server):
+    data = _map(server)
+    view = _state(page)
+    box = page.locator("#map-canvas").bounding_box()
+    g = data["grid"]
+
+    def screen(k, v):
+        return data["items"]["x"][k] / g * v["scale"] + v["tx"], data["items"]["y"][k] / g * v["scale"] + v["ty"]
+
+    # The item furthest from the middle of the canvas: zooming at the middle would push it out of view.
+    mid = (box["width"] / 2, box["height"] / 2)
+    k = max(range(data["total"]), key=lambda i: sum((a - b) ** 2 for a, b in zip(screen(i, view), mid)))
+    x, y = screen(k, view)
+    page.mouse.click(box["x"] + x, box["y"] + y)
+    page.wait_for_selector("#map-item:not([hidden])")
+    chosen = int(page.get_attribute("#map-item-open", "href").rsplit("/", 1)[1])
+    k = data["items"]["id"].index(chosen)
+    before = screen(k, _state(page))
+    page.mouse.move(box["x"] + box["width"] + 40, box["y"] + 10)  # off the canvas: no pointer to zoom at
+    page.focus("#map-canvas")
+    for _ in range(4):
+        page.keyboard.press("+")
+    page.wait_for_timeout(100)
+    after_view = _state(page)
+    assert after_view["scale"] > 2 * view["scale"]
+    after = screen(k, after_view)
+    assert abs(after[0] - before[0]) < 1 and abs(after[1] - before[1]) < 1, (before, after)
+
+
 def test_a_box_selection_returns_the_items_inside_it(page, server):
     data = _map(server)
     page.check('input[name="map-mode"][value="box"]')

@@ -165,16 +165,33 @@ canvasEl.addEventListener("dblclick", (e) => {
   if (i >= 0) window.location.href = `/items/${view.ids[i]}`;
 });
 
-canvasEl.addEventListener("pointerleave", () => (tip.hidden = true));
+canvasEl.addEventListener("pointerleave", () => {
+  tip.hidden = true;
+  lastPointer = null;
+});
+
+/** Where + and - zoom: on the chosen image while it is in view, else where the pointer last was, else on the
+    dot nearest the middle (the middle of a map can be empty, and zooming there sends every dot away). */
+let lastPointer = null;
+canvasEl.addEventListener("pointermove", (e) => (lastPointer = local(e)));
+function zoomCentre() {
+  const { w, h } = view.size();
+  if (view.highlight >= 0) {
+    const [sx, sy] = view.toScreen(view.highlight);
+    if (sx >= 0 && sx <= w && sy >= 0 && sy <= h) return [sx, sy];
+  }
+  if (lastPointer) return lastPointer;
+  const i = view.nearest(w / 2, h / 2, Math.max(w, h));
+  return i >= 0 ? view.toScreen(i) : [w / 2, h / 2];
+}
 
 canvasEl.addEventListener("keydown", (e) => {
-  const { w, h } = view.size();
   const step = e.shiftKey ? 240 : 60;
   const keys = {
     ArrowLeft: () => view.pan(step, 0), ArrowRight: () => view.pan(-step, 0),
     ArrowUp: () => view.pan(0, step), ArrowDown: () => view.pan(0, -step),
-    "+": () => view.zoomAt(1.25, w / 2, h / 2), "=": () => view.zoomAt(1.25, w / 2, h / 2),
-    "-": () => view.zoomAt(0.8, w / 2, h / 2), 0: () => view.fit(),
+    "+": () => view.zoomAt(1.25, ...zoomCentre()), "=": () => view.zoomAt(1.25, ...zoomCentre()),
+    "-": () => view.zoomAt(0.8, ...zoomCentre()), 0: () => view.fit(),
     Escape: () => clearSelection(),
     Enter: () => view.highlight >= 0 && (window.location.href = `/items/${view.ids[view.highlight]}`),
   };
