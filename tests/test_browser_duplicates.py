@@ -114,6 +114,16 @@ def test_review_by_keyboard_export_apply_and_restore(page, review_server, tmp_pa
     page.locator("body").click(position={"x": 5, "y": 5})
     page.keyboard.press("n")
     assert page.evaluate("document.activeElement.tagName") == "H2"
+    # N also jumps from a member's radio button (not from the "Belongs to" list, whose keys pick an entry).
+    headings = page.locator("li.dup-group > h2")
+    at = [h.inner_text() for h in headings.all()].index(near.locator("h2").inner_text())
+    _card(near, "astronaut-border.jpg").locator("input[type=radio]").focus()
+    page.keyboard.press("n")
+    expected = headings.nth(min(at + 1, headings.count() - 1)).inner_text()
+    assert page.evaluate("document.activeElement.tagName + ' ' + document.activeElement.innerText") == f"H2 {expected}"
+    _card(near, "astronaut-border.jpg").locator("select").focus()
+    page.keyboard.press("n")
+    assert page.evaluate("document.activeElement.tagName") == "SELECT"
     _card(near, "astronaut-border.jpg").locator("input[type=radio]").focus()
     page.keyboard.press("Space")  # the bordered export stays instead
     near = _group_of(page, "astronaut-bright.jpg")

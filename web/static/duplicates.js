@@ -209,7 +209,9 @@ planForm.addEventListener("submit", () => {
 
 document.addEventListener("keydown", (event) => {
   if (event.ctrlKey || event.metaKey || event.altKey) return;
-  if (event.target.closest && event.target.closest("input, select, textarea")) return;
+  // Keys typed into a field or a list stay there; on a radio button or a checkbox N and P still jump.
+  const typing = "select, textarea, input:not([type=radio]):not([type=checkbox]):not([type=button])";
+  if (event.target.closest && event.target.closest(typing)) return;
   const key = event.key.toLowerCase();
   if (key !== "n" && key !== "p") return;
   const headings = Array.from(list.querySelectorAll("li.dup-group > h2"));
