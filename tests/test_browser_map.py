@@ -165,6 +165,25 @@ def test_keyboard_zoom_keeps_the_chosen_image_in_place(page, server):
     assert abs(after[0] - before[0]) < 1 and abs(after[1] - before[1]) < 1, (before, after)
 
 
+def test_on_a_narrow_window_the_map_comes_first(page, server):
+    page.set_viewport_size({"width": 800, "height": 800})
+    page.goto(server + "/map")
+    page.wait_for_selector("#map-app:not([data-level=loading])")
+    canvas = page.locator("#map-canvas").bounding_box()
+    heading = page.locator("#map-heading").bounding_box()
+    assert canvas["y"] < 200 and canvas["y"] + canvas["height"] < 800, canvas
+    assert heading["y"] > canvas["y"] + canvas["height"]  # the settings follow the map
+    view = _state(page)
+    data = _map(server)
+    k = 0
+    x = canvas["x"] + data["items"]["x"][k] / data["grid"] * view["scale"] + view["tx"]
+    y = canvas["y"] + data["items"]["y"][k] / data["grid"] * view["scale"] + view["ty"]
+    page.mouse.click(x, y)
+    page.wait_for_selector("#map-item:not([hidden])", state="attached")
+    panel = page.locator("#map-item").bounding_box()
+    assert panel["y"] < 800 - 100  # the chosen item's panel starts in the window, under the map
+
+
 def test_a_box_selection_returns_the_items_inside_it(page, server):
     data = _map(server)
     page.check('input[name="map-mode"][value="box"]')
