@@ -7,6 +7,10 @@ import json
 from tests.test_browser import DEMO, _open, _shot, _upload, browser, demo_subset, page, server  # noqa: F401
 
 
+def card_words(page, item):
+    return page.locator(f'#results li.result[data-id="{item}"] .mark-row button').all_inner_texts()
+
+
 def _ids(page):
     return [int(i) for i in page.locator("#results li.result").evaluate_all("els => els.map(e => e.dataset.id)")]
 
@@ -29,7 +33,8 @@ def test_mark_research_undo_and_export(page, tmp_path):
     assert unliked not in ranked[:1]
     page.wait_for_selector("#marks-panel .marks-item[data-mark=unlike]")
     assert page.locator("#marks-panel .marks-item").count() == 2
-    assert "1 marked like, 1 marked unlike" in page.inner_text("#marks-panel")
+    assert "1 marked more like this, 1 marked not like this" in page.inner_text("#marks-panel")
+    assert card_words(page, liked) == ["Toward", "Away"]  # the buttons' own words (their titles say more)
     card = page.locator(f'#results li.result[data-id="{liked}"]')
     assert card.locator(".mark-like").get_attribute("aria-pressed") == "true"
     assert "Marked: more like this" in card.inner_text()

@@ -5,7 +5,7 @@
 // can be added to the query (createExtras): they count as much as the first one.
 import { ApiError, api, el, shortFolder } from "./common.js";
 
-const LABEL = { like: "Like", unlike: "Unlike" }; // short, so both fit one row of a narrow card
+const LABEL = { like: "Toward", unlike: "Away" }; // short, so both fit one row of a narrow card
 const MEANING = { like: "More like this", unlike: "Not like this" };
 
 /** The marks of one query. `panel`: an empty element to draw the list in; `onChange()`: search again. */
@@ -72,7 +72,7 @@ export function createMarks(panel, onChange) {
       el("h2", { id: "marks-heading", text: "Your marks" }),
       el("p", { class: "fine", text: "Results marked “more like this” pull the search towards them, those marked “not like this” "
         + "push it away (Rocchio’s rule: the query counts 1, the likes 0.75, the unlikes 0.15). The results change at each mark." }),
-      el("p", { class: "marks-count", role: "status", text: `${likes} marked like, ${marks.size - likes} marked unlike.` }),
+      el("p", { class: "marks-count", role: "status", text: `${likes} marked more like this, ${marks.size - likes} marked not like this.` }),
     );
     const list = el("ul", { class: "marks-list", "aria-label": "Marked items" });
     for (const m of marks.values()) {
