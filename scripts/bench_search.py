@@ -137,7 +137,7 @@ def main() -> None:
         table.append(row)
         print(f"{row[0]}: recall@10 {row[3]:.3f}, {med:.2f} ms median, {p95:.2f} ms p95, build {build:.1f} s", flush=True)
 
-        variants = (("", IndexPolicy()), (" (codes=sq8 option)", IndexPolicy(codes="sq8")),
+        variants = (("", IndexPolicy()), (" (option)", IndexPolicy(codes="sq8")),
                     (f"pca{args.pca_dim} + ", IndexPolicy(pca_dim=args.pca_dim)))
         for name, policy in variants:
             with tempfile.TemporaryDirectory(dir=args.work) as tmp:
