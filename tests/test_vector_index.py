@@ -317,3 +317,26 @@ def stored_codes(store, wanted):
             if i in wanted:
                 rows[int(i)] = code.copy()
     return np.stack([rows[int(i)] for i in wanted])
+
+
+def test_nprobe_is_narrowed_to_within_an_eighth_between_the_steps():
+    """Between the last step short of the target and the first reaching it, calibration halves the gap
+    until it is at most an eighth: a curve known in closed form, recall(n) = 1 - 1/n, reaches 0.99 at
+    n = 100, between the steps 96 and 128."""
+    from index.vectors.rebuild import _Calibration
+
+    class Curve(_Calibration):
+        def __init__(self):
+            self.code_recall, self.measured = 1.0, []
+
+        def _lists_recall(self, out, step):
+            self.measured.append(step)
+            return 1.0 - 1.0 / step
+
+    curve = Curve()
+    nprobe, recall = curve._narrow(None, 96, 128, 1 - 1 / 128, 0.99)
+    assert 100 <= nprobe <= 100 + 96 // 8 and recall == pytest.approx(1 - 1 / nprobe)
+    assert len(curve.measured) <= 3  # a few extra passes, not every value
+    curve.code_recall = 0.995  # what the codes lose counts too: 0.995 (1 - 1/n) >= 0.99 needs n >= 199
+    nprobe, _ = curve._narrow(None, 192, 256, 1 - 1 / 256, 0.99)
+    assert 199 <= nprobe <= 199 + 192 // 8
