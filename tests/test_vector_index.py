@@ -340,3 +340,11 @@ def test_nprobe_is_narrowed_to_within_an_eighth_between_the_steps():
     curve.code_recall = 0.995  # what the codes lose counts too: 0.995 (1 - 1/n) >= 0.99 needs n >= 199
     nprobe, _ = curve._narrow(None, 192, 256, 1 - 1 / 256, 0.99)
     assert 199 <= nprobe <= 199 + 192 // 8
+
+
+def test_an_unknown_codes_option_is_refused_in_one_sentence():
+    from index.common.errors import ArchiveError
+
+    with pytest.raises(ArchiveError, match="codes must be fp16 or sq8, not 'int4'"):
+        IndexPolicy.from_dict({"codes": "int4"})
+    assert IndexPolicy.from_dict({"codes": "sq8"}).codes == "sq8" and IndexPolicy.from_dict(None).codes == "fp16"
