@@ -7,9 +7,9 @@ For each size N, a fresh database is made that already holds N images: N empty f
 scan walks and compares them, as a nightly re-run over a large archive does), their catalog rows,
 and N synthetic descriptors per layer (tests.synthetic.Descriptors, at each layer's size) in the
 vector stores, built as kinscope builds them (flat while small, IVF above, with the codes the policy
-gives). Then `kinscope index` runs in a fresh process on the archive root with `--new` small JPEGs added, and its peak resident
-memory (the indexer's lifetime peak, ru_maxrss) and that of its decode workers are printed beside N,
-with the stores' file sizes. The growth per image is the slope between sizes.
+gives). Then `kinscope index` runs in a fresh process on the archive root with `--new` small JPEGs
+added, and its peak resident memory (the indexer's lifetime peak, ru_maxrss) and that of its decode
+workers are printed beside N, with the stores' file sizes. The growth per image is the slope between sizes.
 
 Then, for each of --grow-sizes, a first run's store side: a fresh process creates an archive, loads
 the indexer's ONNX model as a first run does (exported in a child process) and runs it once, then
