@@ -6,10 +6,10 @@
 For each size N, a fresh database is made that already holds N images: N empty files on disk (so the
 scan walks and compares them, as a nightly re-run over a large archive does), their catalog rows,
 and N synthetic descriptors per layer (tests.synthetic.Descriptors, at each layer's size) in the
-vector stores, built as kinscope builds them (flat while small, IVF-SQ8 above). Then `kinscope index`
-runs in a fresh process on the archive root with `--new` small JPEGs added, and its peak resident
-memory (the indexer's lifetime peak, ru_maxrss) and that of its decode workers are printed beside N,
-with the stores' file sizes. The growth per image is the slope between sizes.
+vector stores, built as kinscope builds them (flat while small, IVF above, with the codes the policy
+gives). Then `kinscope index` runs in a fresh process on the archive root with `--new` small JPEGs
+added, and its peak resident memory (the indexer's lifetime peak, ru_maxrss) and that of its decode
+workers are printed beside N, with the stores' file sizes. The growth per image is the slope between sizes.
 
 Then, for each of --grow-sizes, a first run's store side: a fresh process creates an archive, loads
 the indexer's ONNX model as a first run does (exported in a child process) and runs it once, then
@@ -60,7 +60,7 @@ def prefill(db: Path, files: list[tuple[str, int, float]], layers: list[str] | N
     """Catalog rows and vector stores for these files, as if they had been indexed.
 
     Each layer's index is built in this process as the indexer would hold it at this size (flat while
-    small, IVF-SQ8 with lists_for(N) lists above), written as one FAISS file, then laid out as the
+    small, IVF with lists_for(N) lists above), written as one FAISS file, then laid out as the
     indexer's segments by the same conversion that upgrades an archive from before segments."""
     from index.api import Archive
     from index.db.manifest import layer_entry

@@ -5,13 +5,15 @@
 The descriptors come from tests.synthetic.Descriptors (clusters, power-law spectrum, calibrated on the
 demo archive's `parts` descriptors), at the default search layer's size (672). Queries are new points
 from the same clusters, not stored vectors. For each size and each index type kinscope offers (flat;
-IVF-SQ8 grown as the indexer grows it (index.vectors.writer: flat first, IVF-SQ8 past the flat limit,
-retrained with twice the lists after each fourfold growth, nprobe calibrated at each rebuild on 500 stored
-vectors as queries for recall@10 of 0.95 + 0.01 margin), shown with half and twice that nprobe; the same
-behind PCA to 256 dimensions), and IVF-PQ fast-scan with an exact re-rank, which is not offered (see the
-recall):
+IVF grown as the indexer grows it (index.vectors.writer: flat first, IVF past the flat limit, retrained
+after each doubling and with twice the lists after each fourfold growth, nprobe calibrated at each rebuild
+on 500 stored vectors as queries for recall@10 of 0.95 + 0.01 margin), shown with half and twice that
+nprobe: with the default 16-bit float codes, with the 8-bit codes option (`codes="sq8"`), and behind PCA
+to 256 dimensions), and IVF-PQ fast-scan with an exact re-rank, which is not offered (see the recall):
 
-- recall@10: share of the exact 10 nearest (FAISS IndexFlatIP, all cores) found in the first 10;
+- recall@10: share of the exact 10 nearest (FAISS IndexFlatIP, all cores) found in the first 10; at the
+  calibrated nprobe also apart for queries near clusters added after the store's last rebuild (the
+  vectors arrive cluster by cluster, so these lists were trained without them) and near earlier ones;
 - latency: per query, one query at a time, FAISS on one thread: median and 95th percentile;
 - build: seconds to grow the store to its size, every rebuild on the way included (all cores);
 - memory: the store's files (codec and segments) in bytes per vector, and the growth of resident memory
@@ -89,6 +91,12 @@ def grow(db: Path, vectors: np.ndarray, ids: np.ndarray, policy: IndexPolicy) ->
     return seconds, state, disk
 
 
+def query_clusters(gen: Descriptors, nq: int, n: int) -> np.ndarray:
+    """The cluster each of gen.queries(nq, n) was drawn around (its first draw, repeated). Clusters arrive
+    in order (Descriptors.database sorts them), so a cluster's number tells when its vectors were added."""
+    return np.random.default_rng([gen.seed, 3]).integers(0, max(1, n // gen.cluster_size), nq)
+
+
 def pq_rerank(vectors: np.ndarray, ids: np.ndarray, nlist: int, m: int, seed: int = 0):
     """IVF-PQ fast scan (4-bit codes) with an exact re-rank of 16 x k candidates (not offered)."""
     n, d = vectors.shape
@@ -137,17 +145,21 @@ def main() -> None:
         table.append(row)
         print(f"{row[0]}: recall@10 {row[3]:.3f}, {med:.2f} ms median, {p95:.2f} ms p95, build {build:.1f} s", flush=True)
 
-        for label, policy in (("ivf-sq8", IndexPolicy()), (f"pca{args.pca_dim} + ivf-sq8", IndexPolicy(pca_dim=args.pca_dim))):
+        variants = (("", IndexPolicy()), (" (option)", IndexPolicy(codes="sq8")),
+                    (f"pca{args.pca_dim} + ", IndexPolicy(pca_dim=args.pca_dim)))
+        for name, policy in variants:
             with tempfile.TemporaryDirectory(dir=args.work) as tmp:
                 build, state, disk = grow(Path(tmp), vectors, ids, policy)
                 before = rss()
                 store = VectorStore(args.dim, assemble(Path(tmp), state), measured=state["measured"])
                 grown = rss() - before
             info = store.index_info()
+            label = (name + vi.type_name(info)) if name.startswith("pca") else vi.type_name(info) + name
             ivf = faiss.extract_index_ivf(store.index)
             print(f"{label}: nlist {info['nlist']}, nprobe {info['nprobe']} (calibrated when the store held "
                   f"{info['built_for']:,}: recall@10 {info['recall_at_10']:.3f} on {info['recall_queries']} stored "
-                  f"vectors as queries), grown to {n:,} in {build:.1f} s", flush=True)
+                  f"vectors as queries), grown to {n:,} in {build:.1f} s; list sizes' imbalance factor "
+                  f"{ivf.invlists.imbalance_factor():.2f}", flush=True)
             calibrated = info["nprobe"]
             for nprobe in sorted({calibrated // 2, calibrated, calibrated * 2} - {0}):
                 ivf.nprobe = nprobe
@@ -156,6 +168,11 @@ def main() -> None:
                        recall(found, truth), med, p95, build, disk / n, grown / n)
                 table.append(row)
                 print(f"   nprobe {nprobe}: recall@10 {row[3]:.3f}, {med:.2f} ms median, {p95:.2f} ms p95", flush=True)
+                late = query_clusters(gen, len(queries), n) >= info["built_for"] / n * (n // gen.cluster_size)
+                if nprobe == calibrated and late.any():
+                    print(f"   ... of which queries near clusters added after the last rebuild ({late.sum()}): "
+                          f"{recall(found[late], truth[late]):.3f}; near earlier ones ({(~late).sum()}): "
+                          f"{recall(found[~late], truth[~late]):.3f}", flush=True)
             del store
 
         nlist = vi.lists_for(n, IndexPolicy())

@@ -4,8 +4,9 @@
 
 Candidates: the best CANDIDATES_PER_K * (offset + k) + CANDIDATES_EXTRA items of each layer's own index
 (with the search's filters), their union re-scored exactly from every layer's stored vectors (decoded
-codes for an IVF-SQ8 store: about 1e-3 off). An item that is in no layer's candidate list is not ranked,
-so deep pages are approximate; the benchmark (scripts/bench_retrieval.py) ranks every item.
+codes for an IVF store: 16-bit floats about 1e-4 off, 8-bit codes about 1e-3). An item that is in no
+layer's candidate list is not ranked, so deep pages are approximate; the benchmark
+(scripts/bench_retrieval.py) ranks every item.
 The weights of COMBINED_WEIGHTS were chosen by that benchmark (docs/retrieval.md).
 """
 from __future__ import annotations

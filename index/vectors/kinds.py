@@ -2,13 +2,15 @@
 
 - flat: IndexIDMap2(IndexFlatIP), exact. Used while vectors x dimensions stays within
   `IndexPolicy.flat_work` (a query then takes a few milliseconds on one core), or below `flat_max`.
-- ivf-sq8: IndexIVFScalarQuantizer (inverted file, Jegou, Douze and Schmid, TPAMI 2011; 8-bit scalar
-  quantization per dimension, not of residuals, so retraining the lists never re-quantizes; layers of
-  fewer than `IndexPolicy.fp16_below` dimensions get 16-bit float codes instead, FAISS's SQfp16), trained
-  by spherical k-means on a sample of the stored vectors, optionally behind a PCA projection (then
-  re-normalised; scores are cosines of the projected vectors). A hash-table direct map keeps ids
-  removable and vectors reconstructible. `nprobe` is the smallest step whose recall@10, measured
-  against exact search with stored vectors as queries, reaches the policy's target.
+- ivf-sq8 (the kind's name in manifests, whatever its codes): IndexIVFScalarQuantizer (inverted file,
+  Jegou, Douze and Schmid, TPAMI 2011) with 16-bit float codes (FAISS's SQfp16; `IndexPolicy.codes`,
+  the default) or 8-bit scalar quantization per dimension ("sq8", half the memory; layers of fewer
+  than `IndexPolicy.fp16_below` dimensions still get 16-bit floats); either codes the vector itself,
+  not its residual, so retraining the lists never re-quantizes. Trained by spherical k-means on a
+  sample of the stored vectors, optionally behind a PCA projection (then re-normalised; scores are
+  cosines of the projected vectors). A hash-table direct map keeps ids removable and vectors
+  reconstructible. `nprobe` is the smallest number of lists (to within an eighth) whose recall@10,
+  measured against exact search with stored vectors as queries, reaches the policy's target.
 index.vectors.rebuild builds them (segment by segment); this module holds the types and the policy.
 
 HNSW is not offered for stores: it cannot remove ids, which incremental re-indexing needs.
@@ -20,6 +22,8 @@ from dataclasses import asdict, dataclass, fields
 
 import faiss
 import numpy as np
+
+from ..common.errors import ArchiveError
 
 FLAT = "flat"
 IVF = "ivf-sq8"
@@ -41,12 +45,21 @@ class IndexPolicy:
                                  # a standard error of about 0.005 (bench_search: new queries vs calibration)
     retrain_growth: float = 2.0  # IVF lists trained again once the store has grown this much since
     pca_dim: int | None = None  # project to this many dimensions before the IVF (memory / dim)
-    # Below this many dimensions (after PCA) codes are 16-bit floats, not 8-bit: with few dimensions
-    # the 8-bit steps are wide beside the gaps between close neighbours (32 dims, 300 000 synthetic
-    # vectors: 8-bit codes kept 0.83 of the exact 10 nearest, 16-bit floats 0.99; 240 dims: 0.94 and
-    # 1.00; a development script, docs/benchmarks.md). Costs twice the bytes of 8-bit codes.
+    # The codes of IVF stores: 16-bit floats (FAISS's SQfp16) or 8-bit per dimension ("sq8", half the
+    # memory). 8-bit steps are wide beside the gaps between close neighbours: at a million synthetic
+    # 672-dim vectors recall@10 levelled off near 0.96 however many lists were probed, so nprobe had to
+    # reach 384 of 4096 lists for 0.95 + margin; 16-bit floats keep nearly every neighbour and the same
+    # recall needs far fewer lists (docs/benchmarks.md, "Search").
+    codes: str = "fp16"
+    # With codes="sq8", layers below this many dimensions (after PCA) still get 16-bit floats: there the
+    # 8-bit loss is worst (32 dims, 300 000 synthetic vectors: 8-bit codes kept 0.83 of the exact 10
+    # nearest, 16-bit floats 0.99; 240 dims: 0.94 and 1.00; a development script, docs/benchmarks.md).
     fp16_below: int = 256
     seed: int = 0
+
+    def __post_init__(self):
+        if self.codes not in ("fp16", "sq8"):
+            raise ArchiveError(f"the manifest's vector_index codes must be fp16 or sq8, not {self.codes!r}")
 
     @classmethod
     def from_dict(cls, d: dict | None) -> "IndexPolicy":
@@ -89,10 +102,16 @@ def codes_of(index: faiss.Index) -> str | None:
     return next(name for name, q in _QTYPES.items() if q == qtype)
 
 
-def codes_for(dim: int, policy: IndexPolicy) -> str:
-    """The codes a new IVF store of `dim` dimensions gets (after PCA, if the policy asks for it)."""
+def codes_for(dim: int, policy: IndexPolicy, current: str | None = None) -> str:
+    """The codes an IVF store of `dim` dimensions gets (after PCA, if the policy asks for it), rebuilt
+    from a store holding `current` codes (None: flat or new). A store of 8-bit codes keeps them where
+    the policy would not force 16-bit floats for its size: its vectors' 8-bit error cannot be undone
+    by coding them again, which would double their memory for no recall (stores built before 16-bit
+    floats were the default keep working as they were)."""
     coded = policy.pca_dim if policy.pca_dim and policy.pca_dim < dim else dim
-    return FP16 if coded < policy.fp16_below else SQ8
+    if coded < policy.fp16_below:
+        return FP16
+    return SQ8 if current == SQ8 or policy.codes == SQ8 else FP16
 
 
 def type_name(info: dict) -> str:

@@ -1,6 +1,6 @@
 """Re-laying a layer's store out as another index type, one segment at a time.
 
-index.vectors.writer calls this when the store's size calls for another index type (flat -> IVF-SQ8 past
+index.vectors.writer calls this when the store's size calls for another index type (flat -> IVF past
 the flat limit, twice the inverted lists after each fourfold growth, flat again when it shrinks) and
 when learned whitening maps every vector to a new space. Memory: one source segment, one output
 segment, the training sample (at most TRAIN_BYTES) and the probe queries; never the whole store.
@@ -12,13 +12,14 @@ segment, the training sample (at most TRAIN_BYTES) and the probe queries; never 
   each vector moves to the list of its nearest new centroid. Nothing is quantized twice.
 - anything else: vectors are decoded, transformed if asked, and encoded by a codec trained on a
   float sample (vector_index.new_ivf), or stored exactly (flat).
-- nprobe: the smallest step whose recall@10 against exact search reaches the policy's target
-  (plus its margin), measured with `probe_queries` stored vectors as queries, each query's own id
-  left out. The exact neighbours come from brute force over every vector during the same pass; the
-  IVF results of each step are the merge of the results of each output segment, which equals a search of
-  the whole index (every segment shares the codec, so the same lists are probed). What the codes
-  lose on their own is simulated from their quantization steps and multiplies the recall of the
-  lists (see _Calibration); behind PCA it is measured where the source is exact and carried.
+- nprobe: the smallest number of lists (to within an eighth) whose recall@10 against exact search
+  reaches the policy's target (plus its margin), measured with `probe_queries` stored vectors as
+  queries, each query's own id left out. The exact neighbours come from brute force over every
+  vector during the same pass; the IVF results of each step are the merge of the results of each
+  output segment, which equals a search of the whole index (every segment shares the codec, so the
+  same lists are probed). What the codes lose on their own is simulated from their quantization
+  steps and multiplies the recall of the lists (see _Calibration); behind PCA it is measured where
+  the source is exact and carried.
 """
 from __future__ import annotations
 
@@ -52,9 +53,10 @@ def rebuild(store, kind: str, *, transform: Callable | None, dim: int, write: Ca
     policy = store.policy
     n = len(store)
     rng = np.random.default_rng(policy.seed)
+    codes = vi.codes_for(dim, policy, vi.codes_of(store.codec) if store.kind == IVF else None)
     relist = (kind == IVF and store.kind == IVF and transform is None and dim == store.dim
               and not sg.pretransformed(store.codec) and not (policy.pca_dim and policy.pca_dim < dim)
-              and vi.codes_of(store.codec) == vi.codes_for(dim, policy))
+              and vi.codes_of(store.codec) == codes)
     nlist = vi.lists_for(n, policy) if kind == IVF else 0
     if kind == IVF:
         row_bytes = sg.ivf_of(store.codec).code_size if relist else 4 * store.dim
@@ -71,7 +73,7 @@ def rebuild(store, kind: str, *, transform: Callable | None, dim: int, write: Ca
     elif relist:
         codec = _relisted_codec(store.codec, sample, nlist, policy)
     else:
-        codec = vi.new_ivf(dim, nlist, policy)
+        codec = vi.new_ivf(dim, nlist, policy, codes=codes)
         codec.train(sample)
     del sample
 
@@ -278,9 +280,12 @@ class _Calibration:
         return recall_without_self(heap.I, self.truth.I, self.own)
 
     def choose(self, out: _Output, target: float) -> tuple[int, float]:
-        """The smallest step whose estimated recall reaches `target`; where it is out of reach, the step
-        after which more probes stop paying (the lists' recall gains less than 0.002). Later steps are
-        measured one pass each, only if needed. Returns the step and its estimated recall."""
+        """The smallest nprobe whose estimated recall reaches `target`, to within an eighth: the steps
+        (1, 2, 3, 4, 6, 8, 12, ...) until one reaches it, then halving the gap to the step before (each
+        probe scanned costs time, and from 128 to 192 lists is half as much again). Where the target is
+        out of reach, the step after which more probes stop paying (the lists' recall gains less than
+        0.002). Steps past the first pass are measured one pass each, only if needed. Returns the
+        nprobe and its estimated recall."""
         self.truth.finalize()
         if self.every_list is not None:
             self.every_list.finalize()
@@ -289,21 +294,35 @@ class _Calibration:
             self.code_recall = recall_without_self(self.every_list.I, reference.I, self.own)
         elif self.steps is not None:
             self.code_recall = simulated_code_recall(self.queries, self.truth.D, self.truth.I, self.own, self.steps)
-        best = (1, -1.0)
+        best, below = (1, -1.0), None
         for step in self.first + self.later:
-            if step in self.found:
-                lists = self.recall(self.found[step])
-            else:
-                heap = {step: faiss.ResultHeap(len(self.own), self.k, keep_max=True)}
-                for index in out.indexes():
-                    self.search(index, [step], heap)
-                lists = self.recall(heap[step])
+            lists = self._lists_recall(out, step)
             if lists * self.code_recall >= target:
-                return step, lists * self.code_recall
+                return self._narrow(out, below, step, lists, target) if below else (step, lists * self.code_recall)
             if lists < best[1] + 0.002:
                 break
-            best = (step, lists)
+            best, below = (step, lists), step
         return best[0], best[1] * self.code_recall
+
+    def _lists_recall(self, out: _Output, step: int) -> float:
+        if step in self.found:
+            return self.recall(self.found[step])
+        heap = {step: faiss.ResultHeap(len(self.own), self.k, keep_max=True)}
+        for index in out.indexes():
+            self.search(index, [step], heap)
+        return self.recall(heap[step])
+
+    def _narrow(self, out: _Output, low: int, high: int, lists: float, target: float) -> tuple[int, float]:
+        """Between `low` (short of the target) and `high` (reaching it, the lists' recall `lists`): the
+        smallest nprobe reaching it, found by halving until the gap is at most an eighth of `low`."""
+        while high - low > max(1, low // 8):
+            mid = (low + high) // 2
+            found = self._lists_recall(out, mid)
+            if found * self.code_recall >= target:
+                high, lists = mid, found
+            else:
+                low = mid
+        return high, lists * self.code_recall
 
 
 def pretransform_of(codec: faiss.Index):

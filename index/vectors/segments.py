@@ -1,8 +1,8 @@
 """A layer's vectors on disk as segment files, and turning segments into a FAISS index and back.
 
 In the database folder, `stores/<layer>/` holds:
-- `codec-<n>.faiss`: the trained, empty IVF index (coarse centroids, the scalar quantizer: 8-bit
-  ranges or 16-bit floats, the optional PCA), written when the index type is (re)built; none while the
+- `codec-<n>.faiss`: the trained, empty IVF index (coarse centroids, the scalar quantizer: 16-bit
+  floats or 8-bit ranges, the optional PCA), written when the index type is (re)built; none while the
   store is flat (exact);
 - `seg-<n>.npz`: a segment, some of the layer's vectors: `ids` (int64), and either `vectors` (float32,
   flat) or `lists` (int32, the inverted list of each vector) and `codes` (uint8, one row a vector),
