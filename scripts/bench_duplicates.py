@@ -172,7 +172,7 @@ def run(args, work: Path) -> None:
           f"pHash: imagehash.phash (64 bits), Hamming <= {' and <= '.join(map(str, PHASH_THRESHOLDS))}; "
           "pairwise precision / recall / F1 of the groups")
     print("colour check of near pairs: " + ("on (index/duplicates/colour.py)" if args.colour else "off")
-          + "; loose band: " + (f"on (half the threshold, {dup.LOOSE_LINKS} members)" if args.loose else "off"))
+          + "; loose band: " + (f"on ({dup.LOOSE_FACTORS}, {dup.LOOSE_LINKS} members)" if args.loose else "off"))
     ours = lambda sel: ix.ours(sel, args.layer, threshold, normalised, floor, args.colour, args.loose)  # noqa: E731
     family_table(ix, ours)
     one_archive_row(archive, ix, args.layer, threshold, normalised, args.colour, args.loose)
@@ -181,7 +181,7 @@ def run(args, work: Path) -> None:
     settings_table(f"many versions in one run (with the {args.distractors} distractors)", ix, ours,
                    {name: sels for name, (_, sels) in settings.items() if name != "families"})
     if args.large:
-        extra = build_large(work / "extra", args.large, args.seed)
+        extra = [str(Path(p).resolve()) for p in build_large(work / "extra", args.large, args.seed)]  # as catalogued
         big = index_set(work / "db-large", [work / "set", work / "extra"])
         big_labels = labels + [{"path": p, "source": None, "family": None, "variant": None} for p in extra]
         bx = Indexed(big, big_labels, work / f"phash-large-{args.large}.npy")
@@ -198,7 +198,8 @@ def run(args, work: Path) -> None:
                   for x, _ in settings.values()}
         for layer, low in (("objects", 0.15), ("parts", 0.04)):
             runs[layer] = {name: [(sel, x.labels, dup.near_edges(
-                x.vectors[layer][sel], low * (dup.LOOSE_FACTOR if args.loose else 1), min_cosine=dup.MIN_COSINE[layer],
+                x.vectors[layer][sel], (dup.loose_threshold(low, layer) if args.loose else None) or low,
+                min_cosine=dup.MIN_COSINE[layer],
                 pair_check=None if checks[id(x)] is None else
                 (lambda i, j, sel=sel, c=checks[id(x)]: c(sel[i], sel[j])))[:3])
                 for sel in sels] for name, (x, sels) in settings.items()}
@@ -300,7 +301,7 @@ def sweep(layer_runs: dict, thresholds: dict, loose: bool = True) -> None:
             for name in names:
                 total = np.zeros(6, int)
                 for sel, labels, (a, b, s) in runs[name]:
-                    band = dup.loose_threshold(t) if loose else None
+                    band = dup.loose_threshold(t, layer) if loose else None
                     keep = s >= (t if band is None else band)
                     groups = [set(sel[m].tolist()) for _, m in dup.near_groups(
                         len(sel), a[keep], b[keep], s[keep], threshold=t, loose=band, loose_links=dup.LOOSE_LINKS)]

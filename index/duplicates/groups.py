@@ -16,7 +16,7 @@ from .background import (BACKGROUND_CEILING_MADS, BACKGROUND_RANK, BACKGROUND_SA
 from .background import RULE as NORMALISATION_RULE
 from .calibration import record as calibration_record
 from .calibration import CALIBRATED_FOR, DEFAULT_LAYER, DEFAULT_THRESHOLD, DEFAULT_THRESHOLDS, MIN_COSINE  # noqa: F401
-from .calibration import LOOSE_FACTOR, LOOSE_LINKS
+from .calibration import LOOSE_FACTORS, LOOSE_LINKS
 from .candidates import EXACT_SEARCH_MAX, NEIGHBOURS, candidate_pairs, projection  # noqa: F401 (re-exported)
 
 PAIRS_MAX_MEMBERS = 64  # groups larger than this (only exact ones can be) list no pairwise scores
@@ -29,8 +29,8 @@ NEAR_RULE = (
     "threshold (ties: higher summed score, then lower id); a centre's group is the centre plus every "
     "not-yet-grouped neighbour scoring at or above the threshold against the centre itself. Then an item "
     "no group took joins the group in which it scores at or above the threshold against at least two "
-    "members. Then (normalised score only) an item still in no group joins the group in which it scores at "
-    "or above the loose band, half the threshold, against at least two members (the cosine floor and the "
+    "members. Then (normalised score on objects only) an item still in no group joins the group in which it "
+    "scores at or above the loose band, half the threshold, against at least two members (the cosine floor and the "
     "colour check hold there too): a picture's versions crowd and give many weak links, a look-alike rarely "
     "does. Every member is thus linked to the centre, or to two members of its group, so no chain of single "
     "links can join unrelated images. Byte-identical copies take part once, through their exact group's keeper."
@@ -41,9 +41,11 @@ class DuplicatesError(ValueError):
     """A request the user must change (unknown layer, uncalibrated settings, bad threshold)."""
 
 
-def loose_threshold(threshold: float) -> float | None:
-    """The loose band's lower edge for a normalised threshold (None where there is none: a threshold <= 0)."""
-    return float(threshold) * LOOSE_FACTOR if threshold > 0 else None
+def loose_threshold(threshold: float, layer: str | None = DEFAULT_LAYER) -> float | None:
+    """The loose band's lower edge for a normalised threshold on `layer` (None where there is none: a layer the
+    band was not measured on, or a threshold <= 0)."""
+    factor = LOOSE_FACTORS.get(layer)
+    return float(threshold) * factor if factor is not None and threshold > 0 else None
 
 
 # --- grouping --------------------------------------------------------------------------------------------
@@ -218,7 +220,7 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
     if len(reps) >= 2:
         if colour_check:
             check = dup_colour.PairCheck([rows[p]["path"] for p in reps.tolist()], progress=progress)
-        loose = loose_threshold(threshold) if (loose_band and normalised) else None
+        loose = loose_threshold(threshold, layer or DEFAULT_LAYER) if (loose_band and normalised) else None
         a, b, s, bg_reps = near_edges(vectors[reps], threshold if loose is None else loose, normalised=normalised,
                                       min_cosine=min_cosine, k=k, exact_max=exact_max, pair_check=check,
                                       progress=progress)
