@@ -104,6 +104,8 @@ def main() -> None:
     ap.add_argument("--sweep", action="store_true", help="Also print the calibration sweep (layers x thresholds).")
     ap.add_argument("--no-colour-check", dest="colour", action="store_false",
                     help="Leave out the colour check of near pairs (index/duplicates/colour.py), for comparison.")
+    ap.add_argument("--no-loose-band", dest="loose", action="store_false",
+                    help="Leave out the joins through the loose band (the grouping rule's last step), for comparison.")
     args = ap.parse_args()
     if args.workdir:
         args.workdir.mkdir(parents=True, exist_ok=True)
@@ -137,11 +139,11 @@ class Indexed:
         self.source = {int(i): l["source"] for i, l in zip(self.ids, self.labels)}
 
     def ours(self, sel: np.ndarray, layer: str, threshold: float, normalised: bool, floor,
-             colour: bool = True) -> list[set[int]]:
+             colour: bool = True, loose: bool = True) -> list[set[int]]:
         """Our groups on the positions `sel`, as sets of positions (exact groups joined to near ones)."""
         ids = self.ids[sel]
         doc = dup.find(ids, self.vectors[layer][sel], [self.rows[int(i)] for i in ids], threshold=threshold,
-                       normalised=normalised, min_cosine=floor, layer=layer, colour_check=colour)
+                       normalised=normalised, min_cosine=floor, layer=layer, colour_check=colour, loose_band=loose)
         pos = dict(zip(ids.tolist(), sel.tolist()))
         return [{pos[i] for i in c} for c in clusters_from_doc(doc)]
 
@@ -169,23 +171,25 @@ def run(args, work: Path) -> None:
           + (f" and cosine >= {floor}" if floor is not None else "") + "; "
           f"pHash: imagehash.phash (64 bits), Hamming <= {' and <= '.join(map(str, PHASH_THRESHOLDS))}; "
           "pairwise precision / recall / F1 of the groups")
-    print("colour check of near pairs: " + ("on (index/duplicates/colour.py)" if args.colour else "off"))
-    ours = lambda sel: ix.ours(sel, args.layer, threshold, normalised, floor, args.colour)  # noqa: E731
+    print("colour check of near pairs: " + ("on (index/duplicates/colour.py)" if args.colour else "off")
+          + "; loose band: " + (f"on ({dup.LOOSE_FACTORS}, {dup.LOOSE_LINKS} members)" if args.loose else "off"))
+    ours = lambda sel: ix.ours(sel, args.layer, threshold, normalised, floor, args.colour, args.loose)  # noqa: E731
     family_table(ix, ours)
-    one_archive_row(archive, ix, args.layer, threshold, normalised, args.colour)
+    one_archive_row(archive, ix, args.layer, threshold, normalised, args.colour, args.loose)
     settings = {"families": (ix, family_subsets(ix.labels)), **{f"{c}v": (ix, [dup_settings.versions(ix.labels, c)])
                                                                 for c in dup_settings.VERSION_COUNTS}}
     settings_table(f"many versions in one run (with the {args.distractors} distractors)", ix, ours,
                    {name: sels for name, (_, sels) in settings.items() if name != "families"})
     if args.large:
-        extra = build_large(work / "extra", args.large, args.seed)
+        extra = [str(Path(p).resolve()) for p in build_large(work / "extra", args.large, args.seed)]  # as catalogued
         big = index_set(work / "db-large", [work / "set", work / "extra"])
         big_labels = labels + [{"path": p, "source": None, "family": None, "variant": None} for p in extra]
         bx = Indexed(big, big_labels, work / f"phash-large-{args.large}.npy")
         extra_pos = np.arange(len(ix.labels), len(bx.labels))
         grown = {name: [np.concatenate([sel, extra_pos]) for sel in sels] for name, (_, sels) in settings.items()}
         settings_table(f"large: every setting with {len(extra_pos)} extra generated distractors (dup_distractors.py)",
-                       bx, lambda sel: bx.ours(sel, args.layer, threshold, normalised, floor, args.colour), grown)
+                       bx, lambda sel: bx.ours(sel, args.layer, threshold, normalised, floor, args.colour,
+                                                    args.loose), grown)
         settings.update({f"{name}+large": (bx, sels) for name, sels in grown.items()})
         big.close()
     if args.sweep:
@@ -194,12 +198,13 @@ def run(args, work: Path) -> None:
                   for x, _ in settings.values()}
         for layer, low in (("objects", 0.15), ("parts", 0.04)):
             runs[layer] = {name: [(sel, x.labels, dup.near_edges(
-                x.vectors[layer][sel], low, min_cosine=dup.MIN_COSINE[layer],
+                x.vectors[layer][sel], (dup.loose_threshold(low, layer) if args.loose else None) or low,
+                min_cosine=dup.MIN_COSINE[layer],
                 pair_check=None if checks[id(x)] is None else
                 (lambda i, j, sel=sel, c=checks[id(x)]: c(sel[i], sel[j])))[:3])
                 for sel in sels] for name, (x, sels) in settings.items()}
         sweep(runs, {"objects": np.round(np.arange(0.15, 0.301, 0.01), 3),
-                     "parts": np.round(np.arange(0.04, 0.0801, 0.005), 3)})
+                     "parts": np.round(np.arange(0.04, 0.0801, 0.005), 3)}, args.loose)
     archive.close()
 
 
@@ -241,9 +246,10 @@ def family_table(ix: Indexed, ours) -> None:
 
 
 def one_archive_row(archive: Archive, ix: Indexed, layer: str, threshold: float, normalised: bool,
-                    colour: bool = True) -> None:
+                    colour: bool = True, loose: bool = True) -> None:
     """The shipped path end to end: every copy of every family in one archive, through Archive.duplicates."""
-    doc = archive.duplicates(layer=layer, threshold=threshold, normalised=normalised, colour_check=colour)
+    doc = archive.duplicates(layer=layer, threshold=threshold, normalised=normalised, colour_check=colour,
+                             loose_band=loose)
     members = ix.ids.tolist()
     c = pair_counts(clusters_from_doc(doc), ix.source, members)
     p, r, f = prf(*c)
@@ -280,7 +286,7 @@ def settings_table(title: str, ix: Indexed, ours, settings: dict) -> None:
         print(line.rstrip(" |"))
 
 
-def sweep(layer_runs: dict, thresholds: dict) -> None:
+def sweep(layer_runs: dict, thresholds: dict, loose: bool = True) -> None:
     """Precision / recall per layer, setting and threshold (for calibration). The screened background and the
     colour check do not depend on the threshold, so each setting's pairs are scored once at the lowest one and
     filtered."""
@@ -295,8 +301,10 @@ def sweep(layer_runs: dict, thresholds: dict) -> None:
             for name in names:
                 total = np.zeros(6, int)
                 for sel, labels, (a, b, s) in runs[name]:
-                    keep = s >= t
-                    groups = [set(sel[m].tolist()) for _, m in dup.near_groups(len(sel), a[keep], b[keep], s[keep])]
+                    band = dup.loose_threshold(t, layer) if loose else None
+                    keep = s >= (t if band is None else band)
+                    groups = [set(sel[m].tolist()) for _, m in dup.near_groups(
+                        len(sel), a[keep], b[keep], s[keep], threshold=t, loose=band, loose_links=dup.LOOSE_LINKS)]
                     total += dup_settings.counts(groups, labels, sel)
                 p, r, _ = dup_settings.ratios(total)
                 cells.append(f"{p:>6.3f} {r:>6.3f}")

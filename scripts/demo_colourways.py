@@ -1,5 +1,6 @@
 #!/usr/bin/env python3
-"""Colourways on the demo archive: the near groups at the default, colour check of near pairs off and on.
+"""Colourways on the demo archive: the near groups at the default, colour check of near pairs off and on
+(and, with it on, the grouping's loose band off).
 
 The demo archive (demo_archive/, our invented textile studio) holds about twenty colourways of each of
 eleven motifs; its answer key (demo_archive/key.csv) names each file's motif and colourway, and the source of
@@ -33,9 +34,10 @@ def main() -> None:
     archive = Archive.open(args.db, create=True, layers=["objects"])
     if not list(archive.catalog.db.query("select id from images limit 1")):
         archive.add([DEMO], progress=sys.stderr.isatty())
-    for colour in (False, True):
-        doc = archive.duplicates(threshold=args.threshold, colour_check=colour)
-        print(f"colour check {'on ' if colour else 'off'}: " + summary(doc, key))
+    for colour, loose in ((False, True), (True, True), (True, False)):
+        doc = archive.duplicates(threshold=args.threshold, colour_check=colour, loose_band=loose)
+        print(f"colour check {'on ' if colour else 'off'}, loose band {'on ' if loose else 'off'}: "
+              + summary(doc, key))
     archive.close()
 
 

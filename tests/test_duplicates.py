@@ -448,6 +448,28 @@ def test_second_links_join_an_item_linked_to_two_members_but_not_one():
     assert [sorted(m.tolist()) for _, m in dup.star_groups(6, i, j, s)] == [[0, 1, 2, 3]]
 
 
+def test_the_loose_band_joins_an_item_with_two_weak_links_but_not_one():
+    # Star from 0 over 1, 2, 3 at the threshold 0.24. Item 4 scores 0.15 (in the band from 0.12) against members
+    # 1 and 2; item 5 scores 0.20 against member 3 only; item 6 scores 0.10 (below the band) against 1 and 2.
+    i = np.array([0, 0, 0, 1, 2, 3, 1, 2])
+    j = np.array([1, 2, 3, 4, 4, 5, 6, 6])
+    s = np.array([0.5, 0.5, 0.5, 0.15, 0.15, 0.20, 0.10, 0.10], np.float32)
+    band = dup.loose_threshold(0.24)
+    assert band == pytest.approx(0.12)
+    groups = dup.near_groups(7, i, j, s, threshold=0.24, loose=band, loose_links=dup.LOOSE_LINKS)
+    assert [sorted(m.tolist()) for _, m in groups] == [[0, 1, 2, 3, 4]]
+    without = dup.near_groups(7, i, j, s, threshold=0.24)
+    assert [sorted(m.tolist()) for _, m in without] == [[0, 1, 2, 3]]
+
+
+def test_the_loose_band_never_starts_a_group():
+    # Weak links alone (every score in the band, none at the threshold) make no group: the band only adds
+    # items to groups that strong links formed.
+    i, j = np.array([0, 0, 1]), np.array([1, 2, 2])
+    s = np.full(3, 0.2, np.float32)
+    assert dup.near_groups(3, i, j, s, threshold=0.24, loose=0.12, loose_links=2) == []
+
+
 def test_layers_without_a_calibrated_threshold_need_one(dup_archive):
     archive, _, _ = dup_archive
     with pytest.raises(ArchiveError, match="give --threshold"):

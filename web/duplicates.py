@@ -89,7 +89,8 @@ def groups():
     doc, seconds = _groups(layer, threshold)
     page_groups = doc["groups"][offset:offset + limit]
     return jsonify(
-        layer=doc["layer"], score=doc["score"], threshold=doc["threshold"], min_cosine=doc["min_cosine"],
+        layer=doc["layer"], score=doc["score"], threshold=doc["threshold"], loose_threshold=doc.get("loose_threshold"),
+        min_cosine=doc["min_cosine"],
         counts=doc["counts"], rules=doc["rules"], calibration=doc.get("calibration"), seconds=round(seconds, 2),
         total=len(doc["groups"]), offset=offset,
         groups=[{"id": g["id"], "kind": g["kind"], "kind_words": KINDS[g["kind"]], "keeper": g["keeper"],

@@ -16,6 +16,7 @@ from .background import (BACKGROUND_CEILING_MADS, BACKGROUND_RANK, BACKGROUND_SA
 from .background import RULE as NORMALISATION_RULE
 from .calibration import record as calibration_record
 from .calibration import CALIBRATED_FOR, DEFAULT_LAYER, DEFAULT_THRESHOLD, DEFAULT_THRESHOLDS, MIN_COSINE  # noqa: F401
+from .calibration import LOOSE_FACTORS, LOOSE_LINKS
 from .candidates import EXACT_SEARCH_MAX, NEIGHBOURS, candidate_pairs, projection  # noqa: F401 (re-exported)
 
 PAIRS_MAX_MEMBERS = 64  # groups larger than this (only exact ones can be) list no pairwise scores
@@ -28,14 +29,23 @@ NEAR_RULE = (
     "threshold (ties: higher summed score, then lower id); a centre's group is the centre plus every "
     "not-yet-grouped neighbour scoring at or above the threshold against the centre itself. Then an item "
     "no group took joins the group in which it scores at or above the threshold against at least two "
-    "members. Every member is thus linked to the centre, or to two members linked to it, so no chain of "
-    "single links can join unrelated images. Byte-identical copies take part once, through their exact "
-    "group's keeper."
+    "members. Then (normalised score on objects only) an item still in no group joins the group in which it "
+    "scores at or above the loose band, half the threshold, against at least two members (the cosine floor and the "
+    "colour check hold there too): a picture's versions crowd and give many weak links, a look-alike rarely "
+    "does. Every member is thus linked to the centre, or to two members of its group, so no chain of single "
+    "links can join unrelated images. Byte-identical copies take part once, through their exact group's keeper."
 )
 
 
 class DuplicatesError(ValueError):
     """A request the user must change (unknown layer, uncalibrated settings, bad threshold)."""
+
+
+def loose_threshold(threshold: float, layer: str | None = DEFAULT_LAYER) -> float | None:
+    """The loose band's lower edge for a normalised threshold on `layer` (None where there is none: a layer the
+    band was not measured on, or a threshold <= 0)."""
+    factor = LOOSE_FACTORS.get(layer)
+    return float(threshold) * factor if factor is not None and threshold > 0 else None
 
 
 # --- grouping --------------------------------------------------------------------------------------------
@@ -64,14 +74,34 @@ def near_edges(vectors: np.ndarray, threshold: float, *, normalised: bool = True
     return a[keep], b[keep], s[keep], bg
 
 
-def near_groups(n: int, i: np.ndarray, j: np.ndarray, s: np.ndarray,
-                links: int = SECOND_LINKS) -> list[tuple[int, np.ndarray]]:
-    """Star groups (star_groups), then every item no group took joins the group in which it has an edge
-    to at least `links` members (the most such edges; ties: higher summed score, then lower group)."""
-    groups = star_groups(n, i, j, s)
+def near_groups(n: int, i: np.ndarray, j: np.ndarray, s: np.ndarray, links: int = SECOND_LINKS, *,
+                threshold: float | None = None, loose: float | None = None, loose_links: int = 2,
+                loose_share: float = 0.0, rounds: int = 1) -> list[tuple[int, np.ndarray]]:
+    """Star groups (star_groups) on the edges at or above `threshold` (all edges when None), then every item no
+    group took joins the group in which it has such an edge to at least `links` members (attach). With `loose`,
+    items still ungrouped then join a group where they have edges at or above `loose` to at least
+    max(loose_links, loose_share x group size) members (`rounds` passes)."""
+    strict = np.ones(len(s), bool) if threshold is None else s >= threshold
+    groups = star_groups(n, i[strict], j[strict], s[strict])
     if not groups or links < 1:
         return groups
+    groups = attach(n, groups, i[strict], j[strict], s[strict], links)
+    if loose is not None:
+        band = s >= loose
+        for _ in range(rounds):
+            before = sum(len(m) for _, m in groups)
+            groups = attach(n, groups, i[band], j[band], s[band], loose_links, loose_share)
+            if sum(len(m) for _, m in groups) == before:
+                break
+    return groups
+
+
+def attach(n: int, groups: list[tuple[int, np.ndarray]], i: np.ndarray, j: np.ndarray, s: np.ndarray,
+           links: int, share: float = 0.0) -> list[tuple[int, np.ndarray]]:
+    """Every item in no group joins the group in which it has edges to at least max(links, share x group size)
+    members (the most such edges; ties: higher summed score, then lower group)."""
     gid = np.full(n, -1, np.int64)
+    size = np.array([len(m) for _, m in groups], np.float64)
     for g, (_, members) in enumerate(groups):
         gid[members] = g
     a, b, w = np.concatenate([i, j]), np.concatenate([j, i]), np.concatenate([s, s]).astype(np.float64)
@@ -84,14 +114,15 @@ def near_groups(n: int, i: np.ndarray, j: np.ndarray, s: np.ndarray,
     count = np.bincount(inv)
     total = np.bincount(inv, weights=w)
     item, group = uniq // len(groups), uniq % len(groups)
+    enough = count >= np.maximum(links, np.ceil(share * size[group] - 1e-9))
+    item, group, count, total = item[enough], group[enough], count[enough], total[enough]
     order = np.lexsort((group, -total, -count, item))  # per item: most edges, then summed score, then group
-    item, group, count = item[order], group[order], count[order]
-    first = np.r_[True, item[1:] != item[:-1]]
-    joins = first & (count >= links)
+    item, group = item[order], group[order]
+    first = np.r_[True, item[1:] != item[:-1]] if len(item) else np.zeros(0, bool)
     extra: dict[int, list[int]] = {}
-    for it, gr in zip(item[joins].tolist(), group[joins].tolist()):
+    for it, gr in zip(item[first].tolist(), group[first].tolist()):
         extra.setdefault(gr, []).append(it)
-    return [(c, np.concatenate([m, np.array(extra.get(g, []), np.int64)]) if g in extra else m)
+    return [(c, np.concatenate([m, np.array(extra[g], np.int64)]) if g in extra else m)
             for g, (c, m) in enumerate(groups)]
 
 
@@ -157,11 +188,12 @@ def exact_groups(hashes: list[str | None]) -> list[list[int]]:
 def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: float = DEFAULT_THRESHOLD,
          normalised: bool = True, min_cosine: float | None = None, k: int = NEIGHBOURS,
          exact_max: int = EXACT_SEARCH_MAX, progress: bool = False, layer: str | None = None,
-         prefer: list[str] | None = None, colour_check: bool = True) -> dict:
+         prefer: list[str] | None = None, colour_check: bool = True, loose_band: bool = True) -> dict:
     """Group ids by content hash and by descriptor similarity; returns the document of groups.
 
     ids (n,), vectors (n, d) L2-normalised, rows: n dicts with path, width, height, mtime, size, sha256
-    (and captured_at). `prefer`: folders whose members the keeper rule prefers, in order.
+    (and captured_at). `prefer`: folders whose members the keeper rule prefers, in order. `loose_band=False`
+    leaves out the last grouping step (joins through the loose band, loose_threshold).
     """
     rule = keeper_rule.KeeperRule(prefer)
     n, d = vectors.shape
@@ -183,17 +215,20 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
         groups.append(_group("exact", keep, keep, positions, ids, vectors, rows, None, why, ev))
 
     reps = np.flatnonzero(representative)
-    bg = None
+    bg = loose = None
     check = None
     if len(reps) >= 2:
         if colour_check:
             check = dup_colour.PairCheck([rows[p]["path"] for p in reps.tolist()], progress=progress)
-        a, b, s, bg_reps = near_edges(vectors[reps], threshold, normalised=normalised, min_cosine=min_cosine,
-                                      k=k, exact_max=exact_max, pair_check=check, progress=progress)
+        loose = loose_threshold(threshold, layer or DEFAULT_LAYER) if (loose_band and normalised) else None
+        a, b, s, bg_reps = near_edges(vectors[reps], threshold if loose is None else loose, normalised=normalised,
+                                      min_cosine=min_cosine, k=k, exact_max=exact_max, pair_check=check,
+                                      progress=progress)
         if bg_reps is not None:
             bg = np.zeros(n, np.float32)
             bg[reps] = bg_reps
-        for centre, members in near_groups(len(reps), a, b, s):
+        for centre, members in near_groups(len(reps), a, b, s, threshold=threshold, loose=loose,
+                                           loose_links=LOOSE_LINKS):
             positions = reps[members].tolist()
             keep, why, ev = rule.choose([rows[p] for p in positions], pixels=True)
             keep = positions[keep]
@@ -221,6 +256,7 @@ def find(ids: np.ndarray, vectors: np.ndarray, rows: list[dict], *, threshold: f
         "layer": layer,
         "score": "normalised" if normalised else "cosine",
         "threshold": float(threshold),
+        "loose_threshold": loose,
         "min_cosine": None if min_cosine is None else float(min_cosine),
         "rules": {"exact": EXACT_RULE, "near": NEAR_RULE, "keeper": rule.text,
                   "score": (NORMALISATION_RULE if normalised else "score = cosine similarity of the descriptors")
@@ -317,7 +353,7 @@ def resolve_settings(manifest: dict, layer: str | None, threshold: float | None,
 
 def from_archive(catalog, reader, *, layer: str | None = None, threshold: float | None = None,
                  normalised: bool = True, progress: bool = False, prefer: list[str] | None = None,
-                 colour_check: bool = True) -> dict:
+                 colour_check: bool = True, loose_band: bool = True) -> dict:
     """Run the job over every embedded item of an archive on one layer: its catalog, and its stores as
     `reader` (index.vectors.reader.Reader) reads them."""
     layer, chosen, floor = resolve_settings(reader.manifest, layer, threshold, normalised)
@@ -328,7 +364,8 @@ def from_archive(catalog, reader, *, layer: str | None = None, threshold: float 
     order = np.flatnonzero(keep)[np.argsort(stored_ids[keep], kind="stable")]  # catalog order: deterministic
     ids, vectors = stored_ids[order], vectors[order]
     doc = find(ids, vectors, [rows[int(i)] for i in ids], threshold=chosen, normalised=normalised,
-               min_cosine=floor, progress=progress, layer=layer, prefer=prefer, colour_check=colour_check)
+               min_cosine=floor, progress=progress, layer=layer, prefer=prefer, colour_check=colour_check,
+               loose_band=loose_band)
     doc["calibration"] = calibration_record(layer) if threshold is None else None  # None: the user chose
     doc["db"] = str(reader.db)
     return doc

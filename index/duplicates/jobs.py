@@ -11,16 +11,18 @@ class DuplicateJobs:
     """Methods of index.api.Archive; `self` has .catalog, .reader and .db."""
 
     def duplicates(self, *, layer: str | None = None, threshold: float | None = None, normalised: bool = True,
-                   progress: bool = False, prefer: list[str] | None = None, colour_check: bool = True) -> dict:
+                   progress: bool = False, prefer: list[str] | None = None, colour_check: bool = True,
+                   loose_band: bool = True) -> dict:
         """Exact (content hash) and near (descriptor similarity) duplicate groups; see docs/duplicates.md.
         `prefer`: folders whose members the keeper rule prefers, in order. `colour_check=False` leaves out
-        the colour check of near pairs (then recoloured designs group like copies)."""
+        the colour check of near pairs (then recoloured designs group like copies); `loose_band=False` the joins
+        through the loose band (an item that passes half the threshold against two members of a group)."""
         from . import groups as dup
 
         try:
             return dup.from_archive(self.catalog, self.reader, layer=layer, threshold=threshold,
                                     normalised=normalised, progress=progress, prefer=prefer,
-                                    colour_check=colour_check)
+                                    colour_check=colour_check, loose_band=loose_band)
         except dup.DuplicatesError as exc:
             raise ArchiveError(str(exc)) from None
 

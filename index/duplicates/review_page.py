@@ -154,7 +154,9 @@ def _method(doc: dict) -> str:
     short = (
         ("Same bytes", "Files with the same SHA-256 content hash."),
         ("Look-alikes", f"The network's descriptors on layer {doc.get('layer')} are compared; each file of a group "
-         f"scores {doc['threshold']:g} or more against the group's centre or against two of its files."),
+         f"scores {doc['threshold']:g} or more against the group's centre or against two of its files"
+         + (f", or {doc['loose_threshold']:g} or more against two of its files" if doc.get("loose_threshold") else "")
+         + "."),
         ("Score", score + "."),
         ("Colour", "Two look-alikes must also share their colours: another colourway of a design is not a copy "
          "(a grey proof still is)." if str(rules.get("colour", "")).lower() != "colour check: off"

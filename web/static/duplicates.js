@@ -171,7 +171,7 @@ async function load(append) {
     }
     const score = r.score === "normalised" ? "normalised score" : "cosine";
     statusLine.textContent = total
-      ? `${total} groups (${r.counts.exact} of byte-identical files, ${r.counts.near} of look-alikes) holding ${r.counts.images_in_groups} of ${r.counts.images} images; layer ${r.layer}, ${score} ≥ ${r.threshold}. Showing ${groups.length}.`
+      ? `${total} groups (${r.counts.exact} of byte-identical files, ${r.counts.near} of look-alikes) holding ${r.counts.images_in_groups} of ${r.counts.images} images; layer ${r.layer}, ${score} ≥ ${r.threshold}${r.loose_threshold ? ` (or ≥ ${r.loose_threshold} against two members)` : ""}. Showing ${groups.length}.`
       : `No duplicate groups among ${r.counts.images} images (layer ${r.layer}, ${score} ≥ ${r.threshold}).`;
     moreButton.hidden = groups.length >= total;
     showRules(r);
