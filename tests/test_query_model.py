@@ -59,6 +59,27 @@ def test_a_search_by_file_on_a_cached_model_imports_no_torch(onnx_archive):
     assert out.stdout.strip().endswith("torch loaded: False")
 
 
+def test_a_query_on_several_layers_at_once_imports_no_torch(onnx_archive):
+    """A query described on several layers in one pass (the combined choice does this) uses the cached model too;
+    it ran the network through torch until it was fixed. The descriptors are those of one layer at a time."""
+    db, folder = onnx_archive
+    script = (
+        "import sys\n"
+        "from index.api import Archive\n"
+        f"a = Archive.open({str(db)!r})\n"
+        f"v = a.query_vectors({str(folder / 'coffee.png')!r}, ['texture', 'parts'])\n"
+        "for n in ('texture', 'parts'):\n"
+        f"    one = a.query_vector({str(folder / 'coffee.png')!r}, n)\n"
+        "    print(n, round(float(v[n].ravel() @ one.ravel()), 4))\n"
+        "print('torch loaded:', 'torch' in sys.modules)\n"
+    )
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, cwd=REPO)
+    assert out.returncode == 0, out.stderr
+    lines = out.stdout.split("\n")
+    assert "texture 1.0" in lines and "parts 1.0" in lines, out.stdout  # as described one layer at a time
+    assert out.stdout.strip().endswith("torch loaded: False")
+
+
 def test_the_onnx_query_descriptor_is_torch_s_and_the_indexed_one(onnx_archive, sample_images):
     """A query described on the cached model equals torch's description of it (the reference, cosine
     >= 0.9999) and, for an indexed file, the descriptor stored for that file."""

@@ -78,7 +78,7 @@ class SearchJobs:
         """The query's descriptor on each of these layers (an image is run through the network once)."""
         if len(layers) == 1 or (isinstance(query, (int, np.integer)) and box is None):
             return {n: self.query_vector(query, n, box) for n in layers}
-        found = self.embedder.embed_images([self.query_image(query, box)])
+        found = self.query_embedder.embed_images([self.query_image(query, box)])  # as the stores were made
         out = {}
         for n in layers:
             w = self.whitening(n)
