@@ -231,6 +231,8 @@ def main() -> None:
     ap.add_argument("--whole", action="store_true", help="the whole `kinscope index` command as a user runs it "
                     "(fresh process, new database; model cache filled, then empty) against the whole naive script, "
                     "on the photo-sized set only (--photos, default 480 in this mode); --repeat rounds, alternating")
+    ap.add_argument("--naive-limit", type=float, help="with --whole: stop a naive run after this many seconds "
+                    "(it then counts as that long, a lower bound)")
     ap.add_argument("--naive-of", help=argparse.SUPPRESS)  # internal: the naive pipeline on a list of paths
     ap.add_argument("--naive-whole", action="store_true", help=argparse.SUPPRESS)  # internal: every file, no warm-up
     ap.add_argument("--naive-threads", type=int, help=argparse.SUPPRESS)  # internal: torch threads of the naive run

@@ -11,7 +11,8 @@ bench_index.make_set), as a user meets it:
   script gets) and on one thread. On a machine other work shares, torch's threads on every core can
   wait on each other for seconds per image (seen here: 0.6-3.4 s a forward pass on 2 threads against
   0.07-0.13 s on 1 while other processes ran), so the faster of the two in each round is the baseline:
-  the comparison never profits from that;
+  the comparison never profits from that. --naive-limit S stops a naive run after S seconds and
+  counts it as S (a lower bound; the faster run is the baseline, so one stopped run changes nothing);
 - cached: `kinscope index FOLDER --db NEW` with KINSCOPE_CACHE_DIR pointing at a per-user model cache
   filled once before timing (a user's second archive: no torch in any process);
 - empty: the same with an empty cache folder (the first archive ever: the layers are resolved and the
@@ -58,14 +59,18 @@ def photo_folder(work: Path, n: int) -> Path:
     return exact
 
 
-def naive_whole(paths: list[str], work: Path, threads: int) -> dict:
-    """The naive script over every file as a fresh process, torch on `threads`: wall seconds, its loop's share."""
+def naive_whole(paths: list[str], work: Path, threads: int, limit: float | None) -> dict:
+    """The naive script over every file as a fresh process, torch on `threads`: wall seconds, its loop's share.
+    A run longer than `limit` seconds is stopped there and counts as `limit` (a lower bound: "stopped")."""
     listing = work / "naive-whole-paths.txt"
     listing.write_text("\n".join(paths))
     cmd = [sys.executable, str(ROOT / "scripts" / "bench_index.py"), "--naive-of", str(listing), "--naive-whole",
            "--naive-threads", str(threads)]
     t = time.perf_counter()
-    out = subprocess.run(cmd, capture_output=True, text=True, check=True, cwd=ROOT)
+    try:
+        out = subprocess.run(cmd, capture_output=True, text=True, check=True, cwd=ROOT, timeout=limit)
+    except subprocess.TimeoutExpired:
+        return {"wall": limit, "stopped": True}
     wall = time.perf_counter() - t
     report = json.loads(out.stdout.strip().splitlines()[-1])
     return {"wall": wall, "loop": report["loop_seconds"], "start": wall - report["loop_seconds"]}
@@ -106,6 +111,8 @@ def kinscope_whole(folder: Path, db: Path, cache: Path) -> dict:
 
 def split(run: dict) -> str:
     """Where a run's seconds went."""
+    if run.get("stopped"):
+        return "stopped at the time limit (--naive-limit): at least this long"
     if "prepare" not in run:
         return f"start {run['start']:.1f} s + loop {run['loop']:.1f} s"
     return (f"start {run['start']:.1f} s + preparation {run['prepare']:.1f} s + loop {run['loop']:.1f} s "
@@ -135,7 +142,7 @@ def whole_main(args) -> None:
         for kind in order:
             with Others() as o:
                 if kind.startswith("naive"):
-                    result = naive_whole(paths, work, 1 if kind == "naive1" else cores())
+                    result = naive_whole(paths, work, 1 if kind == "naive1" else cores(), args.naive_limit)
                 else:
                     cache = shared if kind == "cached" else work / f"whole-cache-empty-{r}"
                     shutil.rmtree(cache, ignore_errors=True) if kind == "empty" else None
@@ -145,6 +152,8 @@ def whole_main(args) -> None:
             others = max(others, o.share)
             runs[kind].append(result)
             print(f"  {kind:6s} {result['wall']:6.1f} s  {n / result['wall']:5.1f} img/s   {split(result)}", flush=True)
+        if runs["naive"][-1].get("stopped") and runs["naive1"][-1].get("stopped"):
+            print("  both naive runs were stopped: this round's ratios are lower bounds", flush=True)
         runs["best"].append(min(runs["naive"][-1], runs["naive1"][-1], key=lambda run: run["wall"]))
         naive = runs["best"][-1]["wall"]
         print(f"  faster naive / cached {naive / runs['cached'][-1]['wall']:.2f}x, "
