@@ -96,7 +96,7 @@ def kinscope_whole(folder: Path, db: Path, cache: Path) -> dict:
     wall = time.perf_counter() - t0
     reader.join()
     if proc.returncode != 0:
-        raise SystemExit(f"kinscope index failed:\n" + "\n".join(line for _, line in stamped))
+        raise SystemExit("kinscope index failed:\n" + "\n".join(line for _, line in stamped))
     match = SUMMARY.search(stdout)
     if not match:
         raise SystemExit(f"no summary line in kinscope's output:\n{stdout}")
@@ -145,7 +145,8 @@ def whole_main(args) -> None:
                     result = naive_whole(paths, work, 1 if kind == "naive1" else cores(), args.naive_limit)
                 else:
                     cache = shared if kind == "cached" else work / f"whole-cache-empty-{r}"
-                    shutil.rmtree(cache, ignore_errors=True) if kind == "empty" else None
+                    if kind == "empty":
+                        shutil.rmtree(cache, ignore_errors=True)
                     result = kinscope_whole(folder, work / f"whole-db-{kind}", cache)
                     if kind == "empty":
                         shutil.rmtree(cache, ignore_errors=True)
