@@ -10,7 +10,7 @@ bench_index.make_set), as a user meets it:
   included, no warm-up; run twice, with torch on every core (torch's default, what a straightforward
   script gets) and on one thread. On a machine other work shares, torch's threads on every core can
   wait on each other for seconds per image (seen here: 0.4-3.4 s a forward pass on 2 threads against
-  0.07-0.13 s on 1 while other processes ran), so the faster of the two in each round is the baseline:
+  0.05-0.14 s on 1 while other processes ran), so the faster of the two in each round is the baseline:
   the comparison never profits from that. --naive-limit S stops a naive run after S seconds and
   counts it as S (a lower bound; the faster run is the baseline, so one stopped run changes nothing);
 - cached: `kinscope index FOLDER --db NEW` with KINSCOPE_CACHE_DIR pointing at a per-user model cache
