@@ -97,3 +97,16 @@ def test_the_cache_folder_follows_the_environment(monkeypatch, tmp_path):
     assert model_cache.user_cache_dir() == tmp_path / "home" / ".cache" / "kinscope"
     monkeypatch.setenv(model_cache.ENV, str(tmp_path / "mine"))
     assert model_cache.user_cache_dir() == tmp_path / "mine"
+
+
+def test_a_first_archive_for_the_torch_engine_exports_nothing(tmp_path):
+    """Archive.open(engine="torch") resolves the layers in the child process without the ONNX export."""
+    cache = tmp_path / "cache"
+    script = ("import sys\nfrom index.api import Archive\n"
+              "Archive.open(sys.argv[1], create=True, layers=['objects'], engine='torch').close()\n"
+              "print('torch' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", script, str(tmp_path / "db")], capture_output=True, text=True,
+                         cwd=REPO, env={**os.environ, model_cache.ENV: str(cache)})
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == ["False"]  # resolved in the child
+    assert len(list((cache / "settings").glob("*.json"))) == 1 and not list(cache.rglob("*.onnx"))
