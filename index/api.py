@@ -33,6 +33,7 @@ from .ingest.pipeline import configure_threads, cores
 from .map.jobs import MapJobs
 from .model.backbones import DEFAULT_BACKBONE, NAMES, PRESET_HINTS, Backbone, plain_name
 from .model.choice import ENGINES
+from .model.model_cache import export_dir
 from .model.models import ArchiveModels
 from .model.pooling import PCAWhitening
 from .model.settings import available_layers, check_settings, new_manifest_apart
@@ -77,12 +78,14 @@ class Archive(SearchJobs, DuplicateJobs, MapJobs):
     @classmethod
     def open(cls, db: str | os.PathLike, *, create: bool = False, backbone: str | None = None,
              layers: list[str] | None = None, gem_p: float | None = None, whiten: bool | None = None,
-             weights: str | os.PathLike | None = None, lenient: bool = False) -> "Archive":
+             weights: str | os.PathLike | None = None, lenient: bool = False, engine: str | None = None) -> "Archive":
         """Open the archive in folder `db`; with create=True, make it if absent.
 
         Settings given for an existing archive must match what it was built with. A missing or
         damaged catalog is refused (lenient=True: a damaged one is opened for `check` to report);
         a database folder this process cannot write is opened read-only (search, info, serve).
+        engine: the engine the new archive will be indexed with; unless "torch", a network loaded to
+        create it (settings never seen before) is exported for ONNX Runtime in the same child process.
         """
         db = Path(db)
         try:
@@ -94,7 +97,8 @@ class Archive(SearchJobs, DuplicateJobs, MapJobs):
                 raise ArchiveError(f"{db} is not a kinscope database (no {mf.FILE}); index a folder into it first")
             if db.exists() and any(db.iterdir()):
                 raise ArchiveError(f"{db} is not empty and holds no {mf.FILE}; choose a new or empty folder for --db")
-            manifest = new_manifest_apart(db, backbone or DEFAULT_BACKBONE, layers, gem_p, whiten, weights)
+            manifest = new_manifest_apart(db, backbone or DEFAULT_BACKBONE, layers, gem_p, whiten, weights,
+                                          export_to=None if engine == "torch" else export_dir(db))
             archive = cls(db, manifest)
             archive.catalog.set_layers([{k: l[k] for k in mf.LAYER_COLUMNS} for l in manifest["layers"]])
             mf.write(db, manifest)

@@ -1,6 +1,7 @@
 """Indexing throughput, side by side in one run: a naive pipeline against kinscope's, and the machine's limit.
 
     .venv/bin/python scripts/bench_index.py [--photos 400] [--small 1000] [--repeat 3] [--work /tmp/kinscope-bench]
+    .venv/bin/python scripts/bench_index.py --whole [--photos 480] [--repeat 3]   # the whole command, see below
 
 Two generated sets of JPEGs (photo-sized, 3000 x 2000, and small, 640 x 480) are made from the
 scikit-image / scikit-learn sample photographs (random crops, resized, with sensor-like noise so the
@@ -19,6 +20,10 @@ files are about 1.5 MB at quality 90, like camera JPEGs of that size). On each s
 Prints images per second, the ratio kinscope / naive and kinscope as a fraction of the limit, each
 figure the best of --repeat interleaved rounds, with the share of CPU other processes took meanwhile.
 Nothing here is asserted; run it on a quiet machine.
+
+--whole (scripts/bench_index_whole.py) times whole commands instead, each a fresh process from start to
+exit on the photo-sized set: the naive script over every file (imports and model loading included)
+against `kinscope index FOLDER --db NEW` with the per-user model cache filled and with it empty.
 """
 from __future__ import annotations
 
@@ -139,7 +144,9 @@ def naive_in_fresh_process(paths: list[str], work: Path) -> float:
     return json.loads(out.stdout.strip().splitlines()[-1])["rate"]
 
 
-def naive_main(listing: str) -> None:
+def naive_main(listing: str, whole: bool = False, threads: int | None = None) -> None:
+    """The naive pipeline in this process; whole: every file, no warm-up, as a user's script runs it;
+    threads: torch's threads (default: one per core)."""
     import json
 
     import torch
@@ -149,12 +156,18 @@ def naive_main(listing: str) -> None:
     from index.model.layers import resolve_layers
     from index.ingest.pipeline import cores
 
-    torch.set_num_threads(cores())  # all cores for torch, as a straightforward script would have
+    threads = threads or cores()  # all cores for torch by default, as a straightforward script would have
+    torch.set_num_threads(threads)
     backbone = get_backbone()
     model = backbone.load()
     embedder = Embedder(backbone, model, resolve_layers(backbone, model, list(backbone.default_layers)),
-                        engine="torch", threads=cores())
-    paths = Path(listing).read_text().split("\n")
+                        engine="torch", threads=threads)
+    paths = [p for p in Path(listing).read_text().split("\n") if p]
+    if whole:
+        t = time.perf_counter()
+        rate = naive(paths, embedder)
+        print(json.dumps({"rate": rate, "loop_seconds": time.perf_counter() - t}))
+        return
     naive(paths[:2], embedder)  # warm
     print(json.dumps({"rate": naive(paths, embedder)}))
 
@@ -207,17 +220,29 @@ def inference_only(embedder, pixels: np.ndarray, batch_size: int, rounds: int) -
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--photos", type=int, default=400, help="photo-sized JPEGs (3000 x 2000)")
+    ap.add_argument("--photos", type=int, default=None, help="photo-sized JPEGs (3000 x 2000; default 400, 480 with "
+                    "--whole)")
     ap.add_argument("--small", type=int, default=1000, help="small JPEGs (640 x 480)")
     ap.add_argument("--naive", type=int, default=60, help="images per set timed for the naive pipeline")
     ap.add_argument("--batch-size", type=int, default=8)
     ap.add_argument("--workers", type=int, default=None, help="decode workers (default: one per core)")
     ap.add_argument("--repeat", type=int, default=3, help="rounds; each figure is the best round")
     ap.add_argument("--work", default=os.path.join(tempfile.gettempdir(), "kinscope-bench"))
+    ap.add_argument("--whole", action="store_true", help="the whole `kinscope index` command as a user runs it "
+                    "(fresh process, new database; model cache filled, then empty) against the whole naive script, "
+                    "on the photo-sized set only (--photos, default 480 in this mode); --repeat rounds, alternating")
+    ap.add_argument("--naive-limit", type=float, help="with --whole: stop a naive run after this many seconds "
+                    "(it then counts as that long, a lower bound)")
     ap.add_argument("--naive-of", help=argparse.SUPPRESS)  # internal: the naive pipeline on a list of paths
+    ap.add_argument("--naive-whole", action="store_true", help=argparse.SUPPRESS)  # internal: every file, no warm-up
+    ap.add_argument("--naive-threads", type=int, help=argparse.SUPPRESS)  # internal: torch threads of the naive run
     args = ap.parse_args()
     if args.naive_of:
-        return naive_main(args.naive_of)
+        return naive_main(args.naive_of, whole=args.naive_whole, threads=args.naive_threads)
+    if args.whole:
+        from bench_index_whole import whole_main
+
+        return whole_main(args)
 
     from index.model.backbones import get_backbone
     from index.model.torch_embedder import Embedder
@@ -230,7 +255,7 @@ def main() -> None:
     print(f"machine: {machine()}")
     print(f"load average at start: {load()}")
     sets = {
-        "photo 3000x2000": make_set(work / "photos", args.photos, (3000, 2000), 1),
+        "photo 3000x2000": make_set(work / "photos", args.photos or 400, (3000, 2000), 1),
         "small 640x480": make_set(work / "small", args.small, (640, 480), 2),
     }
     for name, paths in sets.items():

@@ -13,21 +13,24 @@ from index.model import model_cache
 
 REPO = Path(__file__).resolve().parents[1]
 
-# Runs in a fresh process: creates an archive and indexes a folder on the ONNX engine. With `forbid`,
-# any child process (the one that would load torch to resolve layers or export) is an error.
+# Runs in a fresh process: creates an archive and indexes a folder on the ONNX engine; lists the child
+# processes started through subprocess.run (the ones that load torch). With `forbid`, any is an error.
 SCRIPT = """
 import json, subprocess, sys
 db, folder, forbid = sys.argv[1], sys.argv[2], sys.argv[3] == "1"
-if forbid:
-    def refuse(*args, **kwargs):
+children, run = [], subprocess.run
+def watch(*args, **kwargs):
+    if forbid:
         raise AssertionError(f"a child process was started: {args[0]}")
-    subprocess.run = refuse
+    children.append(args[0][-1])
+    return run(*args, **kwargs)
+subprocess.run = watch
 from index.api import Archive
 archive = Archive.open(db, create=True, layers=["texture", "objects"])
 report = archive.add([folder], progress=False, engine="onnx")
 top = archive.search(folder + "/coffee.png", layer="objects", k=1)["results"][0]
 print(json.dumps({"torch": "torch" in sys.modules, "engine": report["engine"], "embedded": report["embedded"],
-                  "top": top["path"].rsplit("/", 1)[-1], "score": top["score"]}))
+                  "top": top["path"].rsplit("/", 1)[-1], "score": top["score"], "children": children}))
 """
 
 
@@ -45,15 +48,17 @@ def test_a_second_archive_uses_the_cached_model_and_settings_without_torch(tmp_p
     for name in ("astronaut", "coffee", "chelsea"):  # scikit-image's sample photographs
         sample_images[name].save(folder / f"{name}.png")
     cache = tmp_path / "cache"
-    first = _run(tmp_path / "db1", folder, cache, forbid=False)  # resolves and exports in child processes
-    assert first == {"torch": False, "engine": "onnx", "embedded": 3, "top": "coffee.png", "score": pytest.approx(1.0, abs=1e-4)}
+    # The first archive resolves its layers and exports the model in one child process (torch loaded once).
+    first = _run(tmp_path / "db1", folder, cache, forbid=False)
+    assert first == {"torch": False, "engine": "onnx", "embedded": 3, "top": "coffee.png",
+                     "score": pytest.approx(1.0, abs=1e-4), "children": ["--new-manifest"]}
     models = list((cache / "models").glob("*.onnx"))
     assert len(models) == 1 and not (tmp_path / "db1" / "engines").exists()
     assert len(list((cache / "settings").glob("*.json"))) == 1
     stamp = models[0].stat().st_mtime_ns
     # A new archive with the same settings: no child process (so no torch anywhere), the same model file.
     second = _run(tmp_path / "db2", folder, cache, forbid=True)
-    assert second == first
+    assert second == {**first, "children": []}
     assert list((cache / "models").glob("*.onnx")) == models and models[0].stat().st_mtime_ns == stamp
     m1, m2 = (json.loads((tmp_path / d / "manifest.json").read_text()) for d in ("db1", "db2"))
     assert m1["backbone"] == m2["backbone"] and m1["layers"] == m2["layers"]
@@ -92,3 +97,16 @@ def test_the_cache_folder_follows_the_environment(monkeypatch, tmp_path):
     assert model_cache.user_cache_dir() == tmp_path / "home" / ".cache" / "kinscope"
     monkeypatch.setenv(model_cache.ENV, str(tmp_path / "mine"))
     assert model_cache.user_cache_dir() == tmp_path / "mine"
+
+
+def test_a_first_archive_for_the_torch_engine_exports_nothing(tmp_path):
+    """Archive.open(engine="torch") resolves the layers in the child process without the ONNX export."""
+    cache = tmp_path / "cache"
+    script = ("import sys\nfrom index.api import Archive\n"
+              "Archive.open(sys.argv[1], create=True, layers=['objects'], engine='torch').close()\n"
+              "print('torch' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", script, str(tmp_path / "db")], capture_output=True, text=True,
+                         cwd=REPO, env={**os.environ, model_cache.ENV: str(cache)})
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == ["False"]  # resolved in the child
+    assert len(list((cache / "settings").glob("*.json"))) == 1 and not list(cache.rglob("*.onnx"))

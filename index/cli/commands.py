@@ -101,7 +101,7 @@ def index_cmd(paths, db, layers, backbone, weights, gem_p, whiten, batch_size, e
         if new and not moved_from and not quiet:  # the next half minute is quiet otherwise
             click.echo(f"kinscope: new database {db}: preparing the network (once per model)...", err=True)
         with Archive.open(db, create=not moved_from, backbone=backbone, layers=_layers(layers), gem_p=gem_p,
-                          whiten=whiten, weights=weights) as archive:
+                          whiten=whiten, weights=weights, engine=engine) as archive:
             if moved_from:
                 _print_renamed(archive.rename_root(moved_from, paths[0]), as_json)
             report = archive.add(paths, progress=not quiet, batch_size=batch_size, checkpoint_every=checkpoint_every,

@@ -1,5 +1,6 @@
 """`python -m index.model.child --new-manifest | --export`: the work that loads the model (torch), in a
-process of its own, so that an indexer never holds torch. The settings come as JSON on stdin (see
+process of its own, so that an indexer never holds torch. --new-manifest exports the ONNX model too when
+asked ("export_to"), so a first archive loads torch once, not twice. The settings come as JSON on stdin (see
 index.model.settings, which starts this); no Archive is opened here.
 """
 from __future__ import annotations
@@ -9,7 +10,7 @@ import sys
 from pathlib import Path
 
 from ..common.errors import ArchiveError
-from .settings import backbone_of, new_manifest
+from .settings import backbone_of, export_loaded, new_manifest
 
 USAGE = "usage: python -m index.model.child --new-manifest | --export  (settings as JSON on stdin)"
 
@@ -17,16 +18,20 @@ USAGE = "usage: python -m index.model.child --new-manifest | --export  (settings
 def export(backbone: dict, layers: list[dict], p: float, cache_dir: Path) -> Path:
     """Export (or find cached) the ONNX model of these settings; its path."""
     from .layers import Layer
-    from .onnx_engine import EngineError
-    from .torch_embedder import Embedder
 
     found = backbone_of(backbone)
-    embedder = Embedder(found, found.load(), [Layer(**spec) for spec in layers], p, cache_dir=cache_dir)
+    return export_loaded(found, found.load(), [Layer(**spec) for spec in layers], p, cache_dir)
+
+
+def _new_manifest(asked: dict) -> dict:
+    """{"manifest": ...}, or {"error": message}; with "export_to", the ONNX model exported there too."""
+    export_to = asked.get("export_to")
     try:
-        embedder.use_engine("onnx", may_export=True)
-    except EngineError as exc:
-        raise ArchiveError(str(exc)) from None
-    return embedder.engine.path
+        return {"manifest": new_manifest(Path(asked["db"]), asked["backbone"], asked["layers"], asked["gem_p"],
+                                         asked["whiten"], asked["weights"],
+                                         export_to=Path(export_to) if export_to else None)}
+    except ArchiveError as exc:
+        return {"error": str(exc)}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -38,11 +43,7 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     asked = json.loads(sys.stdin.read())
     if args == ["--new-manifest"]:
-        try:
-            answer = {"manifest": new_manifest(Path(asked["db"]), asked["backbone"], asked["layers"],
-                                               asked["gem_p"], asked["whiten"], asked["weights"])}
-        except ArchiveError as exc:
-            answer = {"error": str(exc)}
+        answer = _new_manifest(asked)
         print(json.dumps(answer))
         return 1 if "error" in answer else 0
     try:

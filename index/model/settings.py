@@ -77,9 +77,11 @@ def available_layers(backbone: str, weights: str | None = None) -> dict:
             "presets": {name: {"node": node, "hint": PRESET_HINTS[name]} for name, node in b.presets.items()}}
 
 
-def new_manifest(db: Path, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
+def new_manifest(db: Path, backbone_name, layer_names, gem_p, whiten, weights, export_to: Path | None = None) -> dict:
     """A new archive's manifest (the folder is created); loads the model to resolve the layers, and
-    records what that gave in the per-user cache (index.model.settings_cache)."""
+    records what that gave in the per-user cache (index.model.settings_cache). export_to: also export
+    the ONNX model there while the model is loaded (see new_manifest_apart); a failed export is only
+    reported on stderr."""
     from .layers import resolve_layers
     from .settings_cache import remember
 
@@ -93,7 +95,26 @@ def new_manifest(db: Path, backbone_name, layer_names, gem_p, whiten, weights) -
     resolved = {"backbone": backbone.manifest(), "layers": [l.manifest() for l in layers],
                 "default_search_layer": backbone.default_search_layer}
     remember(backbone_name, weights, layer_names, resolved)
+    if export_to is not None:
+        try:
+            export_loaded(backbone, model, layers, p, Path(export_to))
+        except ArchiveError as exc:  # left to the indexer, which tries again (or takes torch) and says why
+            print(f"kinscope: ONNX export deferred ({exc})", file=sys.stderr)
     return _manifest(db, resolved, p, whiten)
+
+
+def export_loaded(backbone: Backbone, model, layers: list, p: float, cache_dir: Path) -> Path:
+    """Export (or find cached) the ONNX model of a loaded network, checked against torch; its path.
+    ArchiveError when it cannot be exported."""
+    from .onnx_engine import EngineError
+    from .torch_embedder import Embedder
+
+    embedder = Embedder(backbone, model, layers, p, cache_dir=cache_dir)
+    try:
+        embedder.use_engine("onnx", may_export=True)
+    except EngineError as exc:
+        raise ArchiveError(str(exc)) from None
+    return embedder.engine.path
 
 
 def _gem_p(gem_p) -> float:
@@ -123,10 +144,16 @@ def _manifest(db: Path, resolved: dict, p: float, whiten) -> dict:
     }
 
 
-def new_manifest_apart(db: Path, backbone_name, layer_names, gem_p, whiten, weights) -> dict:
+def new_manifest_apart(db: Path, backbone_name, layer_names, gem_p, whiten, weights,
+                       export_to: Path | None = None) -> dict:
     """new_manifest without loading torch here: from the settings recorded in the per-user cache when
     the same ones were resolved before, else in this process if it already holds torch (tests, the
-    torch engine), else in a child process."""
+    torch engine), else in a child process.
+
+    export_to: the child also exports the ONNX model into this folder (the per-user cache) while it
+    holds the loaded model, so the indexer does not start a second child that loads torch again for
+    the export (about a third of a first archive's preparation). An export that fails there is left
+    to the indexer, which tries it again (or falls back to torch) and says why."""
     from .settings_cache import recall
 
     resolved = recall(backbone_name, weights, layer_names)
@@ -135,7 +162,8 @@ def new_manifest_apart(db: Path, backbone_name, layer_names, gem_p, whiten, weig
     if "torch" in sys.modules:
         return new_manifest(db, backbone_name, layer_names, gem_p, whiten, weights)
     asked = {"db": str(db), "backbone": backbone_name, "layers": layer_names, "gem_p": gem_p,
-             "whiten": whiten, "weights": None if weights is None else str(weights)}
+             "whiten": whiten, "weights": None if weights is None else str(weights),
+             "export_to": None if export_to is None else str(export_to)}
     out = _child("--new-manifest", asked)
     try:
         answer = json.loads(out.stdout.strip().splitlines()[-1])
