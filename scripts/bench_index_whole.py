@@ -16,7 +16,7 @@ bench_index.make_set), as a user meets it:
 - cached: `kinscope index FOLDER --db NEW` with KINSCOPE_CACHE_DIR pointing at a per-user model cache
   filled once before timing (a user's second archive: no torch in any process);
 - empty: the same with an empty cache folder (the first archive ever: the layers are resolved and the
-  ONNX model exported in child processes that load torch).
+  ONNX model exported in one child process that loads torch).
 
 The four runs alternate within each round (the order turns round by round); the ratios naive / kinscope
 are printed per round and as medians. The kinscope command's stderr lines are stamped with the time

@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""The 8-bit engine against fp32, side by side in one run: inference speed, the cosine of each descriptor to its
+"""An 8-bit graph against fp32, side by side in one run: inference speed, the cosine of each descriptor to its
 fp32 twin per layer, and retrieval from the descriptors alone; also fp32 at smaller input sizes (192, 224).
 
 Graphs: the archive default's four layers (colour, texture, parts, objects) exported at 256 (the fp32 graph a

@@ -35,8 +35,8 @@ CALIBRATION_CROPS = 64
 CALIBRATION_SEED = 0
 CALIBRATION_SOURCE = "scikit-learn's sample images (china.jpg, flower.jpg)"
 CHECK_IMAGES = 8  # held-out crops run through both graphs after a build: the descriptors' cosines
-MISSING = ("the onnx-int8 engine needs onnxruntime's quantisation module (onnxruntime.quantization), "
-           "which this installation lacks; reinstall onnxruntime, or index with --engine onnx")
+MISSING = ("an 8-bit graph needs onnxruntime's quantisation module (onnxruntime.quantization), "
+           "which this installation lacks; reinstall onnxruntime to run this benchmark")
 
 
 def quantisation_available() -> bool:

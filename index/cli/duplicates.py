@@ -48,10 +48,16 @@ def to_csv(doc: dict) -> str:
     return buf.getvalue()
 
 
+def _band(doc: dict) -> str:
+    loose = doc.get("loose_threshold")
+    return f" (or >= {loose:g} against two members of a group)" if loose is not None else ""
+
+
 def _summary(doc: dict) -> str:
     c = doc["counts"]
     return (f"{c['groups']} groups ({c['exact']} exact, {c['near']} near) holding {c['images_in_groups']} of "
-            f"{c['images']} images; layer {doc['layer']}, {doc['score']} score >= {doc['threshold']:g}. "
+            f"{c['images']} images; layer {doc['layer']}, {doc['score']} score >= {doc['threshold']:g}"
+            f"{_band(doc)}. "
             f"Suggested keeper: {doc['rules']['keeper']}.")
 
 
@@ -129,7 +135,8 @@ def _read_text(path: str) -> str:
 @click.option("--db", required=True, type=click.Path(exists=True, file_okay=False), help=DB_HELP)
 @click.option("--layer", help="Layer to compare on (default: objects, the one the benchmark calibrated).")
 @click.option("--threshold", type=float, help="Score at or above which two items are near duplicates "
-              "(default: the calibrated value of the layer; see docs/duplicates.md).")
+              "(default: the calibrated value of the layer; see docs/duplicates.md). On objects an item may also "
+              "join a group where it scores half of it against two members.")
 @click.option("--cosine", "raw", is_flag=True, help="Threshold the raw cosine similarity instead of the score "
               "normalised against the archive's background similarity.")
 @click.option("--format", "fmt", type=click.Choice(["json", "csv"]), default="json", show_default=True,

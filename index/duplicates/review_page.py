@@ -122,8 +122,10 @@ def _summary(doc: dict, moving: dict) -> str:
     found = (f"{count(c['groups'], 'group')} holding {c['images_in_groups']:,} of {count(c['images'], 'image')}: "
              f"{count(c['exact'], 'group')} of files with the same bytes and {count(c['near'], 'group')} of look-alikes"
              if c["groups"] else f"No duplicates among {count(c['images'], 'image')}")
+    loose = doc.get("loose_threshold")
+    band = f" (or {loose:g} or more against two members of a group)" if loose is not None else ""
     return (f"<p class='summary'>{found}. Compared on layer {escape(str(doc.get('layer')))}, "
-            f"{escape(doc['score'])} score {doc['threshold']:g} or more; archive "
+            f"{escape(doc['score'])} score {doc['threshold']:g} or more{band}; archive "
             f"{escape(str(doc.get('db') or ''))}. If you move them aside, {count(len(moving), 'file')} would move "
             "(marked \u201cwould move\u201d below).</p>")
 

@@ -26,7 +26,7 @@ EXPORT_FORMAT = 3  # 2: pooled outputs (descriptor, peak, position); 3: peaks fr
 # peaks show the frame, not content. The descriptor still pools the whole map.
 PEAK_RING = 1
 CACHE_DIR = "engines"  # in a database folder: where earlier versions exported (still read)
-META_KEY = "kinscope"  # ONNX metadata entry: {"layers": [...], "grids": {layer: [h, w]}, "p": ..., "int8": ...}
+META_KEY = "kinscope"  # ONNX metadata entry: {"layers": [...], "grids": {layer: [h, w]}, "p": ...}
 
 
 class EngineError(ArchiveError):
@@ -93,9 +93,6 @@ class OnnxEngine:
             self.grids = {name: tuple(meta["grids"][name]) for name in self.names}
         except (KeyError, ValueError, TypeError):
             raise EngineError(f"{path} lacks kinscope's metadata (the layers' grids); export it again") from None
-        self.meta = meta
-        if meta.get("int8"):  # an 8-bit graph (index.model.quantise): its descriptors are not fp32 ones
-            self.name = "onnx-int8"
 
     def embed(self, batch: np.ndarray) -> tuple[dict[str, np.ndarray], dict[str, tuple]]:
         """(N, 3, S, S) float32 -> per layer the L2-normalised descriptor (N, C), and its peaks:
