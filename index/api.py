@@ -97,8 +97,11 @@ class Archive(SearchJobs, DuplicateJobs, MapJobs):
                 raise ArchiveError(f"{db} is not a kinscope database (no {mf.FILE}); index a folder into it first")
             if db.exists() and any(db.iterdir()):
                 raise ArchiveError(f"{db} is not empty and holds no {mf.FILE}; choose a new or empty folder for --db")
+            # Exported early only into the per-user cache: a model written into the database folder before
+            # its manifest would leave a folder that a second attempt refuses (not empty, no manifest).
+            target = None if engine == "torch" else export_dir(db)
             manifest = new_manifest_apart(db, backbone or DEFAULT_BACKBONE, layers, gem_p, whiten, weights,
-                                          export_to=None if engine == "torch" else export_dir(db))
+                                          export_to=None if target is None or db in target.parents else target)
             archive = cls(db, manifest)
             archive.catalog.set_layers([{k: l[k] for k in mf.LAYER_COLUMNS} for l in manifest["layers"]])
             mf.write(db, manifest)

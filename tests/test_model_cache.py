@@ -110,3 +110,17 @@ def test_a_first_archive_for_the_torch_engine_exports_nothing(tmp_path):
     assert out.returncode == 0, out.stderr
     assert out.stdout.split() == ["False"]  # resolved in the child
     assert len(list((cache / "settings").glob("*.json"))) == 1 and not list(cache.rglob("*.onnx"))
+
+
+def test_without_a_writable_cache_nothing_is_exported_before_the_manifest(tmp_path):
+    """When the per-user cache cannot be written, the model would go into the database folder; the child then leaves
+    it to the indexer (after the manifest), so a failed creation never leaves a folder a second attempt refuses."""
+    blocker = tmp_path / "not-a-folder"
+    blocker.write_text("a file where the cache folder should be")
+    script = ("import sys\nfrom index.api import Archive\n"
+              "Archive.open(sys.argv[1], create=True, layers=['objects']).close()")
+    db = tmp_path / "db"
+    out = subprocess.run([sys.executable, "-c", script, str(db)], capture_output=True, text=True,
+                         cwd=REPO, env={**os.environ, model_cache.ENV: str(blocker / "cache")})
+    assert out.returncode == 0, out.stderr
+    assert (db / "manifest.json").is_file() and not list(db.rglob("*.onnx"))
