@@ -16,12 +16,19 @@ REPO = Path(__file__).resolve().parents[1]
 @contextlib.contextmanager
 def serving(db: Path, log_path: Path):
     """Yield the server's base URL; its output goes to log_path (shown if it exits before answering)."""
+    with serving_process(db, log_path) as (base, _):
+        yield base
+
+
+@contextlib.contextmanager
+def serving_process(db: Path, log_path: Path, *options: str):
+    """As `serving`, with more `kinscope serve` options; yields (base URL, the server's process)."""
     from web.serve import free_port
 
     port = free_port("127.0.0.1")
     log = open(log_path, "w")
     proc = subprocess.Popen([sys.executable, "-m", "index", "serve", "--db", str(db), "--host", "127.0.0.1",
-                             "--port", str(port)], stdout=log, stderr=subprocess.STDOUT, cwd=REPO)
+                             "--port", str(port), *options], stdout=log, stderr=subprocess.STDOUT, cwd=REPO)
     base = f"http://127.0.0.1:{port}"
     try:
         for _ in range(600):  # the server opens the archive and warms its query model first
@@ -35,7 +42,7 @@ def serving(db: Path, log_path: Path):
                 time.sleep(0.2)
         else:
             raise RuntimeError("kinscope serve did not answer")
-        yield base
+        yield base, proc
     finally:
         proc.terminate()
         try:

@@ -7,9 +7,6 @@ from __future__ import annotations
 
 import io
 import json
-import os
-import subprocess
-import sys
 import time
 import urllib.error
 import urllib.request
@@ -25,7 +22,8 @@ from web import create_app
 from web.archive_access import Holder
 from web.uploads import KeptQuery, keep
 
-REPO = Path(__file__).resolve().parents[1]
+from tests.serving import serving_process
+
 LIMIT = 60_000_000  # the server's default MAX_UPLOAD_PIXELS
 
 
@@ -145,24 +143,11 @@ def _request(url: str, data: bytes | None = None, headers: dict | None = None, t
 
 
 @pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="reads the server's memory from /proc")
-def test_a_flood_of_the_largest_uploads_keeps_the_server_small(sample_archive):
-    from web.serve import free_port
-
+def test_a_flood_of_the_largest_uploads_keeps_the_server_small(sample_archive, tmp_path):
     archive, _ = sample_archive
-    port = free_port("127.0.0.1")
-    base = f"http://127.0.0.1:{port}"
-    proc = subprocess.Popen([sys.executable, "-m", "index", "serve", "--db", str(archive.db), "--host", "127.0.0.1",
-                             "--port", str(port), "--allow-host", "photos.lan"],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=REPO, env=os.environ.copy())
-    deadline = time.monotonic() + 300
-    try:
-        while True:
-            assert proc.poll() is None and time.monotonic() < deadline, "kinscope serve did not start"
-            try:
-                if _request(base + "/api/info", timeout=2)[0] == 200:
-                    break
-            except OSError:
-                time.sleep(0.3)
+    with serving_process(archive.db, tmp_path / "serve.log", "--allow-host", "photos.lan") as (base, proc):
+        port = base.rsplit(":", 1)[1]
+        deadline = time.monotonic() + 300
         item = json.loads(_request(base + "/api/items?limit=1")[1])["items"][0]["id"]
         assert _request(base + f"/api/search?item={item}&k=3&box=0.1,0.1,0.9,0.9")[0] == 200  # the query model
         # torch (for explanations) loads in a background thread once the server is ready: this waits for it,
@@ -185,10 +170,3 @@ def test_a_flood_of_the_largest_uploads_keeps_the_server_small(sample_archive):
         assert _request(base + f"/api/search?upload={last}&k=3&box=0.1,0.1,0.5,0.5")[0] == 200
         print(f"server grew by {grown:.0f} MB over 72 uploads (64 of 7600x7600 JPEG, 8 of 7745x7745 PNG)")
         assert grown < 300
-    finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
